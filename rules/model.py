@@ -1,0 +1,158 @@
+"""The normalised run: what every reader produces and every rule consumes.
+
+Objects here are frozen and validated when built, so a rule never sees a
+reading that breaks the format's promises (a standard without a nominal value,
+a zero dilution, a duplicate ``(seq, analyte)``). Validation failures raise
+:class:`~rules.errors.InputError` naming the source line and column.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from datetime import datetime
+from enum import StrEnum
+
+from rules.errors import InputError
+
+
+class Kind(StrEnum):
+    """What an injection is, in the trade's own terms."""
+
+    BLANK = "blank"  # calibration blank
+    CAL = "cal"  # calibration standard
+    ICV = "icv"  # initial calibration verification
+    CCV = "ccv"  # continuing calibration verification
+    CCB = "ccb"  # continuing (or initial) calibration blank
+    MB = "mb"  # method blank
+    LCS = "lcs"  # laboratory control sample
+    SAMPLE = "sample"
+    DUP = "dup"  # laboratory duplicate of ``parent``
+    MS = "ms"  # matrix spike of ``parent``
+    MSD = "msd"  # matrix spike duplicate of ``parent``
+    ADDITION = "addition"  # one point of a standard-addition series of ``parent``
+
+
+#: Kinds that must carry a known concentration.
+NEEDS_NOMINAL = frozenset({Kind.CAL, Kind.ICV, Kind.CCV, Kind.LCS})
+#: Kinds that must name the native sample they were made from.
+NEEDS_PARENT = frozenset({Kind.DUP, Kind.MS, Kind.MSD, Kind.ADDITION})
+#: Kinds that must say how much was added.
+NEEDS_ADDED = frozenset({Kind.MS, Kind.MSD, Kind.ADDITION})
+#: Check standards: they open and close brackets.
+CHECK_KINDS = frozenset({Kind.ICV, Kind.CCV})
+#: Field samples: what brackets protect and what the frequency rule counts.
+FIELD_KINDS = frozenset({Kind.SAMPLE, Kind.DUP, Kind.MS, Kind.MSD, Kind.LCS, Kind.MB})
+#: Kinds whose result is a reportable concentration of a real sample.
+REPORTABLE_KINDS = frozenset({Kind.SAMPLE, Kind.DUP, Kind.MS, Kind.MSD, Kind.LCS})
+
+
+def _require_finite(value: float | None, line: int, column: str) -> None:
+    if value is not None and not math.isfinite(value):
+        raise InputError(f"number must be finite, got {value!r}", line, column)
+
+
+@dataclass(frozen=True, slots=True)
+class Reading:
+    """One reading of one analyte in one injection (one row of the native format)."""
+
+    line: int  # 1-based line of the source file, for messages
+    seq: int
+    sample_id: str
+    kind: Kind
+    analyte: str
+    response: float
+    nominal: float | None = None
+    istd: str | None = None
+    istd_response: float | None = None
+    dilution: float = 1.0
+    unit: str | None = None
+    acquired: datetime | None = None
+    parent: str | None = None
+    added: float | None = None
+    run: str | None = None
+    instrument: str | None = None
+
+    def __post_init__(self) -> None:
+        if not self.sample_id:
+            raise InputError("sample_id is empty", self.line, "sample_id")
+        if not self.analyte:
+            raise InputError("analyte is empty", self.line, "analyte")
+        for column in ("response", "nominal", "istd_response", "dilution", "added"):
+            _require_finite(getattr(self, column), self.line, column)
+        if self.dilution <= 0:
+            raise InputError(
+                f"dilution must be greater than zero, got {self.dilution:g}", self.line, "dilution"
+            )
+        if self.kind in NEEDS_NOMINAL and self.nominal is None:
+            raise InputError(f"a '{self.kind}' row needs a nominal value", self.line, "nominal")
+        if self.nominal is not None and self.nominal < 0:
+            raise InputError(
+                f"nominal must not be negative, got {self.nominal:g}", self.line, "nominal"
+            )
+        if self.kind in NEEDS_PARENT and not self.parent:
+            raise InputError(
+                f"a '{self.kind}' row needs the parent sample it was made from", self.line, "parent"
+            )
+        if self.kind in NEEDS_ADDED and self.added is None:
+            raise InputError(
+                f"a '{self.kind}' row needs the amount added", self.line, "added"
+            )
+        if self.istd_response is not None and self.istd_response <= 0:
+            raise InputError(
+                f"istd_response must be greater than zero, got {self.istd_response:g}",
+                self.line,
+                "istd_response",
+            )
+
+    @property
+    def signal(self) -> float:
+        """The response the calibration uses: the internal-standard ratio when there is one."""
+        if self.istd_response is not None:
+            return self.response / self.istd_response
+        return self.response
+
+
+@dataclass(frozen=True, slots=True)
+class Run:
+    """A whole sequence: every reading of every analyte, in the file's order."""
+
+    readings: tuple[Reading, ...]
+    name: str | None = None
+    instrument: str | None = None
+    analytes: tuple[str, ...] = field(init=False)
+
+    def __post_init__(self) -> None:
+        if not self.readings:
+            raise InputError("the file holds no readings")
+        seen: dict[tuple[int, str], int] = {}
+        order: dict[str, None] = {}
+        for reading in self.readings:
+            key = (reading.seq, reading.analyte)
+            if key in seen:
+                raise InputError(
+                    f"seq {reading.seq} analyte '{reading.analyte}' already given on line "
+                    f"{seen[key]}",
+                    reading.line,
+                    "seq",
+                )
+            seen[key] = reading.line
+            order.setdefault(reading.analyte, None)
+        object.__setattr__(self, "analytes", tuple(order))
+
+    @classmethod
+    def of(cls, readings: Iterable[Reading], name: str | None = None) -> Run:
+        """Build a run, taking its name and instrument from the rows when not given."""
+        rows = tuple(readings)
+        run_name = name or next((r.run for r in rows if r.run), None)
+        instrument = next((r.instrument for r in rows if r.instrument), None)
+        return cls(rows, run_name, instrument)
+
+    def of_analyte(self, analyte: str) -> tuple[Reading, ...]:
+        """The readings of one analyte, in acquisition order."""
+        return tuple(sorted((r for r in self.readings if r.analyte == analyte), key=_seq))
+
+
+def _seq(reading: Reading) -> int:
+    return reading.seq
