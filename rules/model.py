@@ -96,9 +96,7 @@ class Reading:
                 f"a '{self.kind}' row needs the parent sample it was made from", self.line, "parent"
             )
         if self.kind in NEEDS_ADDED and self.added is None:
-            raise InputError(
-                f"a '{self.kind}' row needs the amount added", self.line, "added"
-            )
+            raise InputError(f"a '{self.kind}' row needs the amount added", self.line, "added")
         if self.istd_response is not None and self.istd_response <= 0:
             raise InputError(
                 f"istd_response must be greater than zero, got {self.istd_response:g}",

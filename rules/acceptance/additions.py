@@ -1,0 +1,52 @@
+"""Rules on standard-addition series."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+from rules.acceptance.common import number
+from rules.registry import AnalyteContext, rule
+from rules.verdict import Finding, Flag, Severity
+
+
+@rule("addition.fit", "Each standard-addition series has enough points and a straight response")
+def addition_fit(context: AnalyteContext) -> Iterator[Finding]:
+    """A standard-addition result rests on its own straight line of response against added.
+
+    Why: the concentration is an extrapolation to zero response, so it is only
+    as good as the line (common practice: at least 3 points, the unspiked one
+    included, and r² ≥ 0.99). Settings: ``addition_min_points`` (3),
+    ``addition_min_r_squared`` (0.99).
+
+    Fails: W-12 Pb with two points, or with r² = 0.962. Passes: four points,
+    r² = 0.9994.
+    """
+    criteria = context.criteria
+    for parent, series in context.additions.items():
+        seqs = series.seqs
+        r_squared = series.r_squared
+        problem = None
+        value: float | None = None
+        limit: tuple[float | None, float | None] | None = None
+        if len(seqs) < criteria.addition_min_points:
+            problem = f"{len(seqs)} points, at least {criteria.addition_min_points} needed"
+            value, limit = float(len(seqs)), (float(criteria.addition_min_points), None)
+        elif series.problem:
+            problem = series.problem
+        elif r_squared is None or r_squared < criteria.addition_min_r_squared:
+            shown = "undetermined" if r_squared is None else f"{r_squared:.4f}"
+            problem = f"r² = {shown}, limit ≥ {number(criteria.addition_min_r_squared)}"
+            value, limit = r_squared, (criteria.addition_min_r_squared, None)
+        if problem:
+            yield Finding(
+                "addition.fit",
+                Severity.FAIL,
+                f"standard addition of {context.analyte} in {parent}: {problem}",
+                analyte=context.analyte,
+                sample_id=parent,
+                seq=seqs[0],
+                value=value,
+                limit=limit,
+                flag=Flag.QC_FAILED,
+                affected=(seqs[0],),
+            )

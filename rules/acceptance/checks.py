@@ -1,0 +1,81 @@
+"""Rules on check standards and control samples: ICV, CCV, LCS."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+from rules.acceptance.common import (
+    check_limits,
+    check_recovery,
+    number,
+    recovery_pct,
+    result_of,
+    span,
+    within,
+)
+from rules.model import Kind
+from rules.registry import AnalyteContext, rule
+from rules.verdict import Finding, Flag, Severity
+
+
+@rule("check.recovery", "ICV and CCV concentrations recover within limits")
+def check_standard_recovery(context: AnalyteContext) -> Iterator[Finding]:
+    """Each initial and continuing calibration verification recovers its nominal value.
+
+    Why: the ICV (second source) proves the curve, each CCV proves it still
+    holds (US EPA 6010D / 6020B and 200.7 / 200.8: ±10 % [memory]). Samples it
+    brackets are judged by ``bracket.reportable``. Settings:
+    ``icv_recovery_pct`` and ``ccv_recovery_pct`` (90–110).
+
+    Fails: CCV-2 Zn recovered 84.0 %. Passes: CCV-2 Zn recovered 101.3 %.
+    """
+    for reading in context.of_kind(Kind.ICV, Kind.CCV):
+        recovery = check_recovery(context, reading)
+        limits = check_limits(context, reading.kind)
+        if recovery is not None and within(recovery, limits):
+            continue
+        found = "cannot be quantitated" if recovery is None else f"recovered {recovery:.1f} %"
+        yield Finding(
+            "check.recovery",
+            Severity.FAIL,
+            f"{reading.sample_id} {context.analyte} {found}, limit {span(limits)}",
+            analyte=context.analyte,
+            sample_id=reading.sample_id,
+            seq=reading.seq,
+            value=recovery,
+            limit=limits,
+            flag=Flag.QC_FAILED,
+            affected=(reading.seq,),
+        )
+
+
+@rule("lcs.recovery", "Laboratory control samples recover within limits")
+def lcs_recovery(context: AnalyteContext) -> Iterator[Finding]:
+    """Each LCS recovers its known concentration.
+
+    Why: the LCS carries a known amount through the whole preparation, so it
+    shows losses or contamination of the method (US EPA 6010D / 6020B:
+    80–120 % [memory]). Settings: ``lcs_recovery_pct`` (80–120).
+
+    Fails: LCS-1 Cu recovered 71.5 %. Passes: 98.2 %.
+    """
+    limits = context.criteria.lcs_recovery_pct
+    for reading in context.of_kind(Kind.LCS):
+        result = result_of(context, reading)
+        recovery = recovery_pct(result.concentration if result else None, reading.nominal)
+        if recovery is not None and within(recovery, limits):
+            continue
+        found = "cannot be quantitated" if recovery is None else f"recovered {recovery:.1f} %"
+        yield Finding(
+            "lcs.recovery",
+            Severity.FAIL,
+            f"{reading.sample_id} {context.analyte} {found} of {number(reading.nominal or 0)}"
+            f"{context.unit}, limit {span(limits)}",
+            analyte=context.analyte,
+            sample_id=reading.sample_id,
+            seq=reading.seq,
+            value=recovery,
+            limit=limits,
+            flag=Flag.QC_FAILED,
+            affected=(reading.seq,),
+        )

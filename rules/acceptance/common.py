@@ -1,0 +1,54 @@
+"""Small helpers the rules share: recoveries, limits in words, number formatting."""
+
+from __future__ import annotations
+
+from rules.criteria import Range
+from rules.model import Kind, Reading
+from rules.registry import AnalyteContext
+from rules.verdict import Result
+
+
+def number(value: float) -> str:
+    """A number as a person reads it: four significant digits, no exponent for usual sizes."""
+    if value == 0:
+        return "0"
+    if 1e-3 <= abs(value) < 1e6:
+        return f"{value:.4g}"
+    return f"{value:.3e}"
+
+
+def span(limits: Range, suffix: str = " %") -> str:
+    """``90–110 %``."""
+    return f"{number(limits[0])}–{number(limits[1])}{suffix}"
+
+
+def within(value: float, limits: Range) -> bool:
+    return limits[0] <= value <= limits[1]
+
+
+def recovery_pct(found: float | None, expected: float | None) -> float | None:
+    """Found over expected in percent; ``None`` when either is missing or expected is zero."""
+    if found is None or expected is None or expected == 0:
+        return None
+    return 100.0 * found / expected
+
+
+def check_recovery(context: AnalyteContext, reading: Reading) -> float | None:
+    """Recovery of an ICV or CCV, in percent (``None``: not quantifiable)."""
+    result = context.results.get(reading.seq)
+    return recovery_pct(result.concentration if result else None, reading.nominal)
+
+
+def check_limits(context: AnalyteContext, kind: Kind) -> Range:
+    criteria = context.criteria
+    return criteria.icv_recovery_pct if kind is Kind.ICV else criteria.ccv_recovery_pct
+
+
+def check_passes(context: AnalyteContext, reading: Reading) -> bool:
+    """Whether a check standard recovered within its limits (the bracketing rules ask too)."""
+    recovery = check_recovery(context, reading)
+    return recovery is not None and within(recovery, check_limits(context, reading.kind))
+
+
+def result_of(context: AnalyteContext, reading: Reading) -> Result | None:
+    return context.results.get(reading.seq)

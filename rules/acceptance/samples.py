@@ -1,0 +1,298 @@
+"""Rules on field samples: calibrated range, internal standard, duplicates, spikes."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+from rules.acceptance.common import number, recovery_pct, result_of, span, within
+from rules.model import REPORTABLE_KINDS, Kind, Reading
+from rules.registry import AnalyteContext, rule
+from rules.verdict import Finding, Flag, Result, Severity
+
+#: Extra dilutions offered for an over-range sample, in the usual 1-2-5 steps.
+_DILUTION_STEPS = (2, 5, 10, 20, 50, 100, 200, 500, 1000, 2000, 5000, 10000)
+#: An over-range sample is diluted to land at or below this share of the top standard,
+#: leaving room for the sample's own variation (our choice).
+_TARGET_SHARE_OF_TOP = 0.8
+
+
+def suggested_dilution(measured: float, top: float, current: float) -> float | None:
+    """Total dilution that brings ``measured`` to at most 80 % of the top standard.
+
+    ``None`` when even the largest step is not enough (the analyst must plan it).
+    """
+    for step in _DILUTION_STEPS:
+        if measured / step <= _TARGET_SHARE_OF_TOP * top:
+            return current * step
+    return None
+
+
+@rule("range.over", "No result lies above the highest calibration standard")
+def range_over(context: AnalyteContext) -> Iterator[Finding]:
+    """A result above the top standard is an extrapolation and is not reported.
+
+    Why: the curve is only known where standards were measured; beyond the
+    top standard the response may bend (TNI 2016 V1M4 1.7.1.1: no
+    quantitative results outside the calibrated range [published, via TNI
+    guidance]). The finding suggests a total dilution that brings the result
+    to at most 80 % of the top standard (our choice). Judged for samples,
+    duplicates, spikes and LCS, on the concentration in the measured solution.
+
+    Fails: S-07 Cu at 152 µg/L with a top standard of 50 µg/L: dilute 5× and
+    re-run. Passes: S-07 Cu at 31.2 µg/L.
+    """
+    calibration = context.calibration
+    if calibration is None or calibration.range_high is None:
+        return
+    top = calibration.range_high
+    for reading in context.readings:
+        result = result_of(context, reading)
+        if reading.kind not in REPORTABLE_KINDS or result is None or result.measured is None:
+            continue
+        if result.measured > top:
+            dilution = suggested_dilution(result.measured, top, reading.dilution)
+            advice = (
+                f"dilute to {number(dilution)}× in total and re-run"
+                if dilution
+                else "dilute and re-run (beyond a 10000-fold dilution: plan it by hand)"
+            )
+            yield Finding(
+                "range.over",
+                Severity.FAIL,
+                f"{reading.sample_id} {context.analyte} at {number(result.measured)}"
+                f"{context.unit} in the measured solution is over range (top standard "
+                f"{number(top)}{context.unit}): {advice}",
+                analyte=context.analyte,
+                sample_id=reading.sample_id,
+                seq=reading.seq,
+                value=result.measured,
+                limit=(None, top),
+                flag=Flag.OVER_RANGE,
+                affected=(reading.seq,),
+            )
+
+
+@rule("range.under", "Results below the lowest standard are marked as estimates")
+def range_under(context: AnalyteContext) -> Iterator[Finding]:
+    """A result below the lowest non-zero standard is below the quantitation range.
+
+    Why: below the lowest standard the relative uncertainty grows fast; such
+    results are reported as estimated ("J" in US EPA data qualifiers) or as
+    below the limit, not as a number (common practice). A warning: the run
+    does not fail. Judged like ``range.over``.
+
+    Warns: S-03 Pb at 0.21 µg/L with a lowest standard of 0.5 µg/L. Passes:
+    S-03 Pb at 2.4 µg/L.
+    """
+    calibration = context.calibration
+    if calibration is None or calibration.range_low is None:
+        return
+    low = calibration.range_low
+    for reading in context.readings:
+        result = result_of(context, reading)
+        if reading.kind not in REPORTABLE_KINDS or result is None or result.measured is None:
+            continue
+        if result.measured < low:
+            yield Finding(
+                "range.under",
+                Severity.WARN,
+                f"{reading.sample_id} {context.analyte} at {number(result.measured)}"
+                f"{context.unit} is below the lowest standard ({number(low)}{context.unit}): "
+                "estimated value",
+                analyte=context.analyte,
+                sample_id=reading.sample_id,
+                seq=reading.seq,
+                value=result.measured,
+                limit=(low, None),
+                flag=Flag.BELOW_RANGE,
+                affected=(reading.seq,),
+            )
+
+
+@rule("istd.recovery", "Internal-standard responses stay near those of the standards")
+def istd_recovery(context: AnalyteContext) -> Iterator[Finding]:
+    """Each injection's internal-standard response, relative to the calibration's mean.
+
+    Why: a suppressed or enhanced internal standard means the ratio no longer
+    corrects the matrix effect (US EPA 6020B: 70–120 % of the calibration
+    blank; 200.8: 60–125 % [memory]; 70–130 % of the standards' mean is our
+    common-practice default). Failing injections' results are not reportable.
+    Settings: ``istd_recovery_pct`` (70–130).
+
+    Fails: S-11's atrazine-d5 at 55 % of the standards' mean. Passes: at 96 %.
+    """
+    calibration = context.calibration
+    if calibration is None or not calibration.istd_reference:
+        return
+    reference = calibration.istd_reference
+    limits = context.criteria.istd_recovery_pct
+    for reading in context.readings:
+        if reading.istd_response is None or reading.kind in (Kind.CAL, Kind.BLANK):
+            continue
+        recovery = 100.0 * reading.istd_response / reference
+        if within(recovery, limits):
+            continue
+        name = reading.istd or "internal standard"
+        yield Finding(
+            "istd.recovery",
+            Severity.FAIL,
+            f"{reading.sample_id} {name} (for {context.analyte}) at {recovery:.1f} % of the "
+            f"standards' mean, limit {span(limits)}",
+            analyte=context.analyte,
+            sample_id=reading.sample_id,
+            seq=reading.seq,
+            value=recovery,
+            limit=limits,
+            flag=Flag.ISTD_OUT,
+            affected=(reading.seq,),
+        )
+
+
+def _native(context: AnalyteContext, reading: Reading) -> tuple[Reading, Result] | None:
+    """The parent sample's reading and result (the nearest one acquired before, else the first)."""
+    candidates = [
+        r for r in context.readings if r.kind is Kind.SAMPLE and r.sample_id == reading.parent
+    ]
+    if not candidates:
+        return None
+    earlier = [r for r in candidates if r.seq < reading.seq]
+    chosen = earlier[-1] if earlier else candidates[0]
+    result = result_of(context, chosen)
+    return (chosen, result) if result else None
+
+
+def _not_judged(rule_id: str, context: AnalyteContext, reading: Reading, why: str) -> Finding:
+    return Finding(
+        rule_id,
+        Severity.INFO,
+        f"{reading.sample_id} {context.analyte} not judged: {why}",
+        analyte=context.analyte,
+        sample_id=reading.sample_id,
+        seq=reading.seq,
+        flag=Flag.NOT_JUDGED,
+        affected=(reading.seq,),
+    )
+
+
+@rule("duplicate.rpd", "Laboratory duplicates agree with their parent samples")
+def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
+    """Relative percent difference between a duplicate and its parent sample.
+
+    Why: duplicates show the method's precision on a real matrix (US EPA
+    6010D / 6020B: RPD ≤ 20 % [memory]). Near the quantitation limit RPDs are
+    large by nature, so the rule applies only when both results are at least
+    5× the lowest standard (common practice). A missing parent is a warning:
+    the precision is then not shown. Settings: ``duplicate_max_rpd_pct`` (20),
+    ``duplicate_min_multiple`` (5).
+
+    Fails: S-05-D Pb 14.2 µg/L against S-05 at 10.1 µg/L (RPD 33.7 %). Passes:
+    10.4 against 10.1 (RPD 2.9 %).
+    """
+    criteria = context.criteria
+    calibration = context.calibration
+    low = calibration.range_low if calibration else None
+    for reading in context.of_kind(Kind.DUP):
+        duplicate = result_of(context, reading)
+        native = _native(context, reading)
+        if native is None:
+            yield Finding(
+                "duplicate.rpd",
+                Severity.WARN,
+                f"{reading.sample_id} {context.analyte}: parent sample '{reading.parent}' "
+                "is not in this run, precision not shown",
+                analyte=context.analyte,
+                sample_id=reading.sample_id,
+                seq=reading.seq,
+                flag=Flag.NOT_JUDGED,
+                affected=(reading.seq,),
+            )
+            continue
+        parent = native[1]
+        if duplicate is None or duplicate.measured is None or parent.measured is None:
+            yield _not_judged("duplicate.rpd", context, reading, "a result cannot be quantitated")
+            continue
+        if (
+            low is None
+            or duplicate.concentration is None
+            or parent.concentration is None
+            or min(duplicate.measured, parent.measured) < criteria.duplicate_min_multiple * low
+        ):
+            yield _not_judged(
+                "duplicate.rpd",
+                context,
+                reading,
+                f"below {number(criteria.duplicate_min_multiple)}× the lowest standard",
+            )
+            continue
+        mean = (duplicate.concentration + parent.concentration) / 2
+        rpd = 100.0 * abs(duplicate.concentration - parent.concentration) / mean
+        if rpd > criteria.duplicate_max_rpd_pct:
+            yield Finding(
+                "duplicate.rpd",
+                Severity.FAIL,
+                f"{reading.sample_id} {context.analyte} {number(duplicate.concentration)} against "
+                f"{reading.parent} {number(parent.concentration)}{context.unit}: RPD {rpd:.1f} %, "
+                f"limit ≤ {number(criteria.duplicate_max_rpd_pct)} %",
+                analyte=context.analyte,
+                sample_id=reading.sample_id,
+                seq=reading.seq,
+                value=rpd,
+                limit=(None, criteria.duplicate_max_rpd_pct),
+                flag=Flag.QC_FAILED,
+                affected=(reading.seq,),
+            )
+
+
+@rule("spike.recovery", "Matrix spikes recover the amount added")
+def spike_recovery(context: AnalyteContext) -> Iterator[Finding]:
+    """Recovery of a matrix spike or spike duplicate: (spiked − native) / added.
+
+    Why: a spike in the real matrix shows interferences the clean LCS cannot
+    (US EPA 6010D / 6020B: 75–125 % [memory]). When the native concentration
+    exceeds 4× the spike, the difference is lost in the native's own
+    variation and the spike is not judged (same methods [memory]). Settings:
+    ``spike_recovery_pct`` (75–125), ``spike_max_native_ratio`` (4).
+
+    Fails: S-09-MS Zn recovered 61.0 % of 20 µg/L added. Passes: 97.5 %.
+    """
+    criteria = context.criteria
+    limits = criteria.spike_recovery_pct
+    for reading in context.of_kind(Kind.MS, Kind.MSD):
+        spiked = result_of(context, reading)
+        native = _native(context, reading)
+        added = reading.added or 0.0
+        if native is None:
+            yield _not_judged(
+                "spike.recovery", context, reading, f"parent '{reading.parent}' not in this run"
+            )
+            continue
+        parent = native[1]
+        if spiked is None or spiked.concentration is None or parent.concentration is None:
+            yield _not_judged("spike.recovery", context, reading, "a result cannot be quantitated")
+            continue
+        if parent.concentration > criteria.spike_max_native_ratio * added:
+            yield _not_judged(
+                "spike.recovery",
+                context,
+                reading,
+                f"native {number(parent.concentration)} exceeds "
+                f"{number(criteria.spike_max_native_ratio)}× the spike of {number(added)}",
+            )
+            continue
+        recovery = recovery_pct(spiked.concentration - parent.concentration, added)
+        if recovery is not None and within(recovery, limits):
+            continue
+        found = "cannot be computed (nothing added)" if recovery is None else f"{recovery:.1f} %"
+        yield Finding(
+            "spike.recovery",
+            Severity.FAIL,
+            f"{reading.sample_id} {context.analyte} recovered {found} of {number(added)}"
+            f"{context.unit} added to {reading.parent}, limit {span(limits)}",
+            analyte=context.analyte,
+            sample_id=reading.sample_id,
+            seq=reading.seq,
+            value=recovery,
+            limit=limits,
+            flag=Flag.QC_FAILED,
+            affected=(reading.seq,),
+        )

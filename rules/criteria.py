@@ -1,0 +1,122 @@
+"""Acceptance criteria: every limit a rule applies, with its default and source.
+
+The defaults here are the source of truth; ``config/criteria.yaml`` is the same
+set written out for people to read and copy, and a test keeps the two equal.
+Per-analyte overrides are partial: only the keys given change.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from rules.calibration import Model, Weighting
+from rules.errors import ConfigError
+
+Range = tuple[float, float]
+
+
+class _Frozen(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class AnalyteCriteria(_Frozen):
+    """Limits for one analyte. Percentages are in percent."""
+
+    # --- calibration
+    model: Model = Model.LINEAR
+    weighting: Weighting = Weighting.NONE
+    blank: Literal["subtract", "zero_point", "none"] = "subtract"
+    # US EPA SW-846 Method 8000D: at least 5 standards for a line, 6 for a quadratic [memory].
+    min_levels: int = Field(default=5, ge=2)
+    min_levels_quadratic: int = Field(default=6, ge=3)
+    # 8000D accepts r ≥ 0.995 for a line; r² ≥ 0.995 is the stricter common practice.
+    min_r_squared: float = Field(default=0.995, ge=0, le=1)
+    # FDA BMV (2018) / ICH M10 (2022): standards within ±15 %, ±20 % at the lowest level.
+    back_calculation_pct: float = Field(default=15.0, gt=0)
+    back_calculation_lowest_pct: float = Field(default=20.0, gt=0)
+    # ISO 8466-1:1990 §4.1.3: F test at the 99 % level.
+    mandel_alpha: float = Field(default=0.01, gt=0, lt=1)
+    # 8000D: average response factor %RSD ≤ 20 % [memory].
+    max_rf_rsd_pct: float = Field(default=20.0, gt=0)
+    # 8000D RSE ≤ 20 % [memory]; off by default (None) since the back-calculation rule covers it.
+    max_rse_pct: float | None = Field(default=None, gt=0)
+    # --- check standards: US EPA 6010D / 6020B and 200.7 / 200.8, ±10 % [memory].
+    icv_recovery_pct: Range = (90.0, 110.0)
+    ccv_recovery_pct: Range = (90.0, 110.0)
+    # --- bracketing: a check every 10 samples and at the end (6010D / 6020B, 200.8) [memory].
+    max_field_samples_between_checks: int = Field(default=10, ge=1)
+    require_closing_check: bool = True
+    # --- blanks: below the lowest calibration level (6010D / 6020B: ICB/CCB < LLOQ) [memory].
+    # None = the lowest non-zero calibration standard.
+    blank_limit: float | None = Field(default=None, gt=0)
+    # --- internal standard: common practice between 6020B (70–120 %) and 200.8 (60–125 %).
+    istd_recovery_pct: Range = (70.0, 130.0)
+    # --- duplicates, spikes and control samples: 6010D / 6020B [memory].
+    duplicate_max_rpd_pct: float = Field(default=20.0, gt=0)
+    duplicate_min_multiple: float = Field(default=5.0, ge=0)  # of the lowest level, for RPD to apply
+    spike_recovery_pct: Range = (75.0, 125.0)
+    spike_max_native_ratio: float = Field(default=4.0, gt=0)  # native > 4× spike: not judged
+    lcs_recovery_pct: Range = (80.0, 120.0)
+    # --- standard addition: common practice.
+    addition_min_points: int = Field(default=3, ge=2)
+    addition_min_r_squared: float = Field(default=0.99, ge=0, le=1)
+
+    @model_validator(mode="after")
+    def _ranges_ordered(self) -> AnalyteCriteria:
+        for name, value in self:
+            if name.endswith("_recovery_pct") and value[0] >= value[1]:
+                raise ValueError(f"{name}: low limit {value[0]} must be below high {value[1]}")
+        return self
+
+
+class Criteria(_Frozen):
+    """All criteria of one configuration: defaults, per-analyte overrides, switched-off rules."""
+
+    defaults: AnalyteCriteria = AnalyteCriteria()
+    analytes: dict[str, dict[str, Any]] = Field(default_factory=dict)
+    disabled_rules: tuple[str, ...] = ()
+
+    @field_validator("disabled_rules")
+    @classmethod
+    def _sorted_unique(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        # Sorted so that the digest does not depend on the order the lab wrote them in.
+        return tuple(sorted(set(value)))
+
+    @model_validator(mode="after")
+    def _overrides_valid(self) -> Criteria:
+        for analyte, override in self.analytes.items():
+            try:
+                AnalyteCriteria.model_validate({**self.defaults.model_dump(), **override})
+            except ValidationError as error:
+                raise ValueError(f"analytes.{analyte}: {_first_problem(error)}") from None
+        return self
+
+    def for_analyte(self, analyte: str) -> AnalyteCriteria:
+        """The defaults with this analyte's overrides applied."""
+        override = self.analytes.get(analyte)
+        if not override:
+            return self.defaults
+        return AnalyteCriteria.model_validate({**self.defaults.model_dump(), **override})
+
+    def digest(self) -> str:
+        """SHA-256 of the canonical JSON of these criteria, for the audit trail."""
+        canonical = json.dumps(self.model_dump(mode="json"), sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(canonical.encode()).hexdigest()
+
+
+def _first_problem(error: ValidationError) -> str:
+    problem = error.errors()[0]
+    where = ".".join(str(part) for part in problem["loc"])
+    return f"{where}: {problem['msg']}" if where else str(problem["msg"])
+
+
+def build_criteria(data: dict[str, Any] | None) -> Criteria:
+    """Validate criteria from plain data (parsed YAML); raise ConfigError naming the bad key."""
+    try:
+        return Criteria.model_validate(data or {})
+    except ValidationError as error:
+        raise ConfigError(f"criteria.{_first_problem(error)}") from None

@@ -1,0 +1,305 @@
+"""Judge a run: calibrate each analyte, quantitate every reading, apply every rule.
+
+``evaluate(run, criteria)`` is the whole functional core seen from the shell:
+a validated :class:`~rules.model.Run` in, a :class:`~rules.verdict.Verdict`
+out, nothing read or written on the way.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from statistics import fmean
+
+from rules.acceptance.samples import suggested_dilution
+from rules.calibration import (
+    PARAMETERS,
+    Fit,
+    Model,
+    detection_limits,
+    fit_calibration,
+    mandel_test,
+    relative_standard_error,
+    standard_addition,
+)
+from rules.criteria import AnalyteCriteria, Criteria
+from rules.errors import ConfigError
+from rules.model import Kind, Reading, Run
+from rules.registry import AnalyteContext, Rule, all_rules
+from rules.verdict import (
+    AdditionSeries,
+    Calibration,
+    Finding,
+    Flag,
+    Result,
+    Severity,
+    StandardPoint,
+    Status,
+    Verdict,
+)
+
+#: Kinds that are part of the calibration, not results.
+_CALIBRATION_KINDS = frozenset({Kind.BLANK, Kind.CAL})
+#: Mandel's test needs this many levels to say anything (ISO 8466-1 asks for at least 5).
+_MANDEL_MIN_LEVELS = 5
+
+
+def active_rules(criteria: Criteria) -> tuple[Rule, ...]:
+    """The registered rules minus those the criteria switch off; unknown ids are a config error."""
+    rules = all_rules()
+    known = {r.id for r in rules}
+    unknown = sorted(set(criteria.disabled_rules) - known)
+    if unknown:
+        raise ConfigError(
+            f"criteria.disabled_rules: unknown rule id {unknown[0]!r}; known ids: "
+            + ", ".join(sorted(known))
+        )
+    return tuple(r for r in rules if r.id not in criteria.disabled_rules)
+
+
+def evaluate(run: Run, criteria: Criteria) -> Verdict:
+    """The verdict on ``run`` under ``criteria``."""
+    rules = active_rules(criteria)
+    by_analyte: dict[str, list[Reading]] = {analyte: [] for analyte in run.analytes}
+    for reading in run.readings:
+        by_analyte[reading.analyte].append(reading)
+
+    findings: list[Finding] = []
+    calibrations: list[Calibration] = []
+    results: list[Result] = []
+    additions: list[AdditionSeries] = []
+    for analyte, rows in by_analyte.items():
+        rows.sort(key=lambda r: r.seq)
+        judged = _judge_analyte(analyte, tuple(rows), criteria.for_analyte(analyte), rules)
+        findings.extend(judged[0])
+        if judged[1] is not None:
+            calibrations.append(judged[1])
+        results.extend(judged[2])
+        additions.extend(judged[3])
+
+    order = {analyte: index for index, analyte in enumerate(run.analytes)}
+    results.sort(key=lambda r: (r.seq if r.seq is not None else -1, order[r.analyte]))
+    failed = any(f.severity is Severity.FAIL for f in findings)
+    return Verdict(
+        status=Status.FAIL if failed else Status.PASS,
+        run=run.name,
+        instrument=run.instrument,
+        findings=tuple(findings),
+        calibrations=tuple(calibrations),
+        results=tuple(results),
+        additions=tuple(additions),
+    )
+
+
+def _judge_analyte(
+    analyte: str, rows: tuple[Reading, ...], criteria: AnalyteCriteria, rules: Sequence[Rule]
+) -> tuple[list[Finding], Calibration | None, list[Result], list[AdditionSeries]]:
+    blank_signal = _blank_signal(rows, criteria)
+    unit = next((r.unit for r in rows if r.unit), None)
+    calibration = _calibrate(analyte, rows, criteria, blank_signal, unit)
+    fit = calibration.fit if calibration else None
+    series = _standard_additions(analyte, rows, blank_signal)
+
+    preliminary: dict[int, Result] = {}
+    for reading in rows:
+        if reading.kind in _CALIBRATION_KINDS or reading.kind is Kind.ADDITION:
+            continue
+        preliminary[reading.seq] = _quantitate(reading, fit, blank_signal, unit)
+    for addition in series.values():
+        preliminary[addition.seqs[0]] = _addition_result(addition, unit)
+
+    context = AnalyteContext(analyte, criteria, rows, calibration, preliminary, series)
+    findings = [finding for rule in rules for finding in rule.check(context)]
+
+    flags: dict[int, list[Flag]] = {}
+    for finding in findings:
+        if finding.flag is not None:
+            for seq in finding.affected:
+                flags.setdefault(seq, []).append(finding.flag)
+    calibration_failed = any(
+        f.rule.startswith("calibration.") and f.severity is Severity.FAIL for f in findings
+    )
+    results = []
+    for seq, result in preliminary.items():
+        marks = flags.get(seq, [])
+        if calibration_failed and result.kind is not Kind.ADDITION:
+            marks = [*marks, Flag.CALIBRATION_FAILED]
+        if marks:
+            result = _with_flags(result, marks, calibration.range_high if calibration else None)
+        results.append(result)
+    return findings, calibration, results, list(series.values())
+
+
+def _with_flags(result: Result, marks: Iterable[Flag], top: float | None) -> Result:
+    unique = tuple(dict.fromkeys(marks))
+    suggested = None
+    if Flag.OVER_RANGE in unique and result.measured is not None and top is not None:
+        suggested = suggested_dilution(result.measured, top, result.dilution)
+    return Result(
+        sample_id=result.sample_id,
+        seq=result.seq,
+        kind=result.kind,
+        analyte=result.analyte,
+        line=result.line,
+        signal=result.signal,
+        measured=result.measured,
+        concentration=result.concentration,
+        uncertainty=result.uncertainty,
+        dilution=result.dilution,
+        unit=result.unit,
+        flags=unique,
+        suggested_dilution=suggested,
+    )
+
+
+def _blank_signal(rows: Sequence[Reading], criteria: AnalyteCriteria) -> float | None:
+    """The mean calibration-blank signal to subtract, or ``None`` when nothing is subtracted."""
+    if criteria.blank != "subtract":
+        return None
+    blanks = [r.signal for r in rows if r.kind is Kind.BLANK]
+    return fmean(blanks) if blanks else None
+
+
+def _corrected(reading: Reading, blank_signal: float | None) -> float:
+    return reading.signal - blank_signal if blank_signal is not None else reading.signal
+
+
+def _calibrate(
+    analyte: str,
+    rows: Sequence[Reading],
+    criteria: AnalyteCriteria,
+    blank_signal: float | None,
+    unit: str | None,
+) -> Calibration | None:
+    standards = [r for r in rows if r.kind is Kind.CAL]
+    if not standards:
+        return None
+    x = [r.nominal or 0.0 for r in standards]
+    y = [_corrected(r, blank_signal) for r in standards]
+    if criteria.blank == "zero_point":
+        for blank in (r for r in rows if r.kind is Kind.BLANK):
+            x.append(0.0)
+            y.append(blank.signal)
+    non_zero = [value for value in x if value > 0]
+    istd = [r.istd_response for r in standards if r.istd_response is not None]
+    fit: Fit | None = None
+    problem = None
+    try:
+        fit = fit_calibration(x, y, criteria.model, criteria.weighting)
+    except ValueError as error:
+        problem = str(error)
+
+    points = []
+    for reading, value in zip(standards, y, strict=False):
+        nominal = reading.nominal or 0.0
+        back = fit.invert(value) if fit is not None else None
+        error_pct = 100.0 * (back - nominal) / nominal if back is not None and nominal > 0 else None
+        points.append(
+            StandardPoint(
+                reading.sample_id, reading.seq, reading.line, nominal, value, back, error_pct
+            )
+        )
+    judged = [(p.nominal, p.back_calculated) for p in points if p.nominal > 0]
+    rse = None
+    if fit is not None and all(back is not None for _, back in judged):
+        rse = relative_standard_error(
+            [nominal for nominal, _ in judged],
+            [back for _, back in judged if back is not None],
+            PARAMETERS[criteria.model],
+        )
+    mandel = None
+    if (
+        fit is not None
+        and criteria.model is Model.LINEAR
+        and len(set(non_zero)) >= _MANDEL_MIN_LEVELS
+    ):
+        mandel = mandel_test(x, y, criteria.mandel_alpha)
+    limits = detection_limits(fit) if fit is not None else None
+    return Calibration(
+        analyte=analyte,
+        unit=unit,
+        fit=fit,
+        standards=tuple(points),
+        blank_signal=blank_signal,
+        uses_internal_standard=bool(istd),
+        istd_reference=fmean(istd) if istd else None,
+        rse_pct=rse,
+        mandel=mandel,
+        lod=limits[0] if limits else None,
+        loq=limits[1] if limits else None,
+        range_low=min(non_zero) if non_zero else None,
+        range_high=max(non_zero) if non_zero else None,
+        problem=problem,
+    )
+
+
+def _quantitate(
+    reading: Reading, fit: Fit | None, blank_signal: float | None, unit: str | None
+) -> Result:
+    signal = _corrected(reading, blank_signal)
+    measured = fit.invert(signal) if fit is not None else None
+    uncertainty = (
+        fit.inverse_uncertainty(signal) if fit is not None and measured is not None else None
+    )
+    return Result(
+        sample_id=reading.sample_id,
+        seq=reading.seq,
+        kind=reading.kind,
+        analyte=reading.analyte,
+        line=reading.line,
+        signal=signal,
+        measured=measured,
+        concentration=measured * reading.dilution if measured is not None else None,
+        uncertainty=uncertainty * reading.dilution if uncertainty is not None else None,
+        dilution=reading.dilution,
+        unit=reading.unit or unit,
+        suggested_dilution=None,
+    )
+
+
+def _standard_additions(
+    analyte: str, rows: Sequence[Reading], blank_signal: float | None
+) -> dict[str, AdditionSeries]:
+    grouped: dict[str, list[Reading]] = {}
+    for reading in rows:
+        if reading.kind is Kind.ADDITION:
+            grouped.setdefault(reading.parent or "", []).append(reading)
+    series = {}
+    for parent, points in grouped.items():
+        added = tuple(r.added or 0.0 for r in points)
+        signals = tuple(_corrected(r, blank_signal) for r in points)
+        outcome = None
+        problem = None
+        try:
+            outcome = standard_addition(added, signals)
+        except ValueError as error:
+            problem = str(error)
+        series[parent] = AdditionSeries(
+            analyte=analyte,
+            parent=parent,
+            seqs=tuple(r.seq for r in points),
+            added=added,
+            signals=signals,
+            dilution=points[0].dilution,
+            outcome=outcome,
+            problem=problem,
+        )
+    return series
+
+
+def _addition_result(series: AdditionSeries, unit: str | None) -> Result:
+    outcome = series.outcome
+    measured = outcome.concentration if outcome else None
+    deviation = outcome.std_dev if outcome else None
+    return Result(
+        sample_id=series.parent,
+        seq=series.seqs[0],
+        kind=Kind.ADDITION,
+        analyte=series.analyte,
+        line=None,
+        signal=None,
+        measured=measured,
+        concentration=measured * series.dilution if measured is not None else None,
+        uncertainty=deviation * series.dilution if deviation is not None else None,
+        dilution=series.dilution,
+        unit=unit,
+    )

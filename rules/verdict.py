@@ -1,0 +1,163 @@
+"""What an evaluation produces: findings, per-reading results, calibrations, the verdict."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from enum import StrEnum
+
+from rules.calibration import AdditionResult, Fit, MandelResult
+from rules.model import Kind
+
+
+class Severity(StrEnum):
+    FAIL = "fail"  # the run (or the named result) must not be reported as it is
+    WARN = "warn"  # reportable, but the analyst should look
+    INFO = "info"  # for the record
+
+
+class Status(StrEnum):
+    PASS = "pass"
+    FAIL = "fail"
+    ERROR = "error"  # the file could not be evaluated at all
+
+
+#: A limit as (low, high); either end may be open.
+Limit = tuple[float | None, float | None]
+
+
+class Flag(StrEnum):
+    """Short stable words on a result; other tools may rely on them."""
+
+    OVER_RANGE = "over_range"  # above the highest standard: dilute and re-run
+    BELOW_RANGE = "below_range"  # below the lowest non-zero standard: estimated value
+    CALIBRATION_FAILED = "calibration_failed"  # the analyte's calibration did not pass
+    NO_CALIBRATION = "no_calibration"  # no usable calibration for the analyte
+    CHECK_FAILED = "check_failed"  # a neighbouring check standard failed
+    NOT_BRACKETED = "not_bracketed"  # no check standard before or after it
+    ISTD_OUT = "istd_out"  # the injection's internal standard is out of limits
+    NOT_QUANTIFIABLE = "not_quantifiable"  # no concentration gives this response
+    QC_FAILED = "qc_failed"  # this QC sample (blank, LCS, duplicate, spike) is out of limits
+    NOT_JUDGED = "not_judged"  # a QC comparison that could not be made
+
+
+#: Flags that make a field sample's result unreportable: it goes on the re-run list.
+RERUN_FLAGS = frozenset(
+    {
+        Flag.OVER_RANGE,
+        Flag.CALIBRATION_FAILED,
+        Flag.NO_CALIBRATION,
+        Flag.CHECK_FAILED,
+        Flag.NOT_BRACKETED,
+        Flag.ISTD_OUT,
+        Flag.NOT_QUANTIFIABLE,
+    }
+)
+
+
+@dataclass(frozen=True, slots=True)
+class Finding:
+    """One rule's observation about the run, in plain words."""
+
+    rule: str
+    severity: Severity
+    message: str
+    analyte: str | None = None
+    sample_id: str | None = None
+    seq: int | None = None
+    value: float | None = None
+    limit: Limit | None = None
+    flag: Flag | None = None  # put on the results listed in ``affected``
+    affected: tuple[int, ...] = ()  # seqs of this analyte's results the finding concerns
+
+
+@dataclass(frozen=True, slots=True)
+class Result:
+    """One non-calibration reading (or one standard-addition series) turned into a concentration.
+
+    ``measured`` is the concentration in the measured solution; ``concentration``
+    is ``measured`` times the dilution, as reported. ``uncertainty`` is the
+    standard uncertainty of ``concentration`` from the calibration alone.
+    """
+
+    sample_id: str
+    seq: int | None
+    kind: Kind
+    analyte: str
+    line: int | None
+    signal: float | None  # the response used (blank-corrected, ISTD ratio), None for additions
+    measured: float | None
+    concentration: float | None
+    uncertainty: float | None
+    dilution: float
+    unit: str | None
+    flags: tuple[Flag, ...] = ()
+    suggested_dilution: float | None = None  # only with OVER_RANGE
+
+
+@dataclass(frozen=True, slots=True)
+class StandardPoint:
+    """One calibration standard and how well the fit gives it back."""
+
+    sample_id: str
+    seq: int
+    line: int
+    nominal: float
+    signal: float
+    back_calculated: float | None
+    error_pct: float | None
+
+
+@dataclass(frozen=True, slots=True)
+class Calibration:
+    """One analyte's calibration: the fit, its standards and its figures of merit."""
+
+    analyte: str
+    unit: str | None
+    fit: Fit | None  # None when the standards could not determine the model
+    standards: tuple[StandardPoint, ...]
+    blank_signal: float | None  # the mean blank subtracted, when blank correction applies
+    uses_internal_standard: bool
+    istd_reference: float | None  # mean ISTD response of the standards
+    rse_pct: float | None
+    mandel: MandelResult | None
+    lod: float | None
+    loq: float | None
+    range_low: float | None  # lowest non-zero standard
+    range_high: float | None
+    problem: str | None = None  # why there is no fit, in plain words
+
+
+@dataclass(frozen=True, slots=True)
+class AdditionSeries:
+    """One standard-addition series: the native sample measured with increasing additions."""
+
+    analyte: str
+    parent: str
+    seqs: tuple[int, ...]
+    added: tuple[float, ...]
+    signals: tuple[float, ...]
+    dilution: float
+    outcome: AdditionResult | None  # None when the points cannot give a line
+    problem: str | None = None
+
+    @property
+    def r_squared(self) -> float | None:
+        return self.outcome.fit.r_squared if self.outcome else None
+
+
+@dataclass(frozen=True, slots=True)
+class Verdict:
+    """The whole judgement of a run."""
+
+    status: Status
+    run: str | None
+    instrument: str | None
+    findings: tuple[Finding, ...]
+    calibrations: tuple[Calibration, ...]
+    results: tuple[Result, ...]
+    additions: tuple[AdditionSeries, ...] = ()
+    error: str | None = None
+
+    def reruns(self) -> tuple[Result, ...]:
+        """Field-sample results that cannot be reported as they are."""
+        return tuple(r for r in self.results if RERUN_FLAGS.intersection(r.flags))
