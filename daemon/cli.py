@@ -1,0 +1,138 @@
+"""The ``calwarden`` command line.
+
+Exit codes: 0 pass, 1 fail, 2 error (the file could not be evaluated, or the
+configuration is invalid). Heavy modules are imported inside the commands so
+that ``calwarden --help`` and a cold ``check`` start quickly.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+EXIT_PASS, EXIT_FAIL, EXIT_ERROR = 0, 1, 2
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="calwarden",
+        description="Quality-control screening of calibrated analytical runs.",
+        epilog="Automated screening supports, and does not replace, the analyst's review.",
+    )
+    parser.add_argument("--version", action="store_true", help="print the version and exit")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    check = commands.add_parser(
+        "check",
+        help="judge one run file and print the verdict",
+        description="Judge one run file. Exit 0 pass, 1 fail, 2 error.",
+    )
+    check.add_argument("file", type=Path, help="the run export (native CSV format)")
+    check.add_argument("--config", type=Path, help="YAML configuration (criteria and overrides)")
+    check.add_argument(
+        "--json", action="store_true", help="print the verdict JSON on stdout and nothing else"
+    )
+    check.add_argument(
+        "--out",
+        type=Path,
+        help="also write <stem>.verdict.json, <stem>.flagged.csv and <stem>.report.txt here",
+    )
+
+    listing = commands.add_parser("rules", help="list every acceptance rule with its defaults")
+    listing.add_argument("--config", type=Path, help="show the limits of this configuration")
+    listing.add_argument("rule", nargs="?", help="explain one rule in full")
+    return parser
+
+
+def _check(args: argparse.Namespace) -> int:
+    from daemon.config import load_config
+    from daemon.outputs import write_outputs
+    from daemon.pipeline import judge_file
+    from daemon.report import render
+    from rules.errors import ConfigError
+
+    try:
+        config = load_config(args.config)
+        judgement = judge_file(args.file, config)
+    except ConfigError as error:
+        return _check_failed(args, f"configuration error: {error}")
+    except Exception as error:  # a bug of ours must still give a verdict, not a traceback
+        message = f"internal error while judging the file ({type(error).__name__}: {error})"
+        return _check_failed(args, message)
+
+    document = judgement.document
+    if args.out is not None:
+        try:
+            write_outputs(args.out, args.file.stem, document, judgement.table, judgement.verdict)
+        except OSError as error:
+            print(f"calwarden: cannot write to {args.out}: {error}", file=sys.stderr)
+            return EXIT_ERROR
+    if args.json:
+        print(json.dumps(document, indent=2, ensure_ascii=False))
+    else:
+        print(render(document, full=False), end="")
+        if args.out is not None:
+            print(f"\nverdict, flagged copy and report written to {args.out}")
+    return {"pass": EXIT_PASS, "fail": EXIT_FAIL}.get(document["status"], EXIT_ERROR)
+
+
+def _check_failed(args: argparse.Namespace, message: str) -> int:
+    from daemon.pipeline import error_document
+
+    if args.json:
+        print(json.dumps(error_document(args.file, message, None), indent=2))
+    else:
+        print(f"calwarden: {message}", file=sys.stderr)
+    return EXIT_ERROR
+
+
+def _rules(args: argparse.Namespace) -> int:
+    from daemon.config import load_config
+    from rules.errors import ConfigError
+    from rules.registry import all_rules
+
+    try:
+        config = load_config(args.config)
+    except ConfigError as error:
+        print(f"calwarden: configuration error: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    rules = all_rules()
+    if args.rule:
+        chosen = [r for r in rules if r.id == args.rule]
+        if not chosen:
+            print(
+                f"calwarden: no rule {args.rule!r}; `calwarden rules` lists them", file=sys.stderr
+            )
+            return EXIT_ERROR
+        rule = chosen[0]
+        print(f"{rule.id}: {rule.summary}\n\n{rule.explanation}")
+        return EXIT_PASS
+    disabled = set(config.criteria.disabled_rules)
+    width = max(len(r.id) for r in rules)
+    for rule in rules:
+        state = "  (switched off)" if rule.id in disabled else ""
+        print(f"{rule.id:<{width}}  {rule.summary}{state}")
+    print("\n`calwarden rules RULE` explains one rule: why, its settings and examples.")
+    return EXIT_PASS
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    if args.version:
+        from daemon.verdict_json import calwarden_version
+
+        print(f"calwarden {calwarden_version()}")
+        return EXIT_PASS
+    if args.command == "check":
+        return _check(args)
+    if args.command == "rules":
+        return _rules(args)
+    _parser().print_help()
+    return EXIT_ERROR
+
+
+if __name__ == "__main__":
+    sys.exit(main())

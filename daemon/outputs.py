@@ -1,0 +1,127 @@
+"""Writing the files of a verdict: JSON, flagged copy of the input, report.
+
+Every file is written atomically (a temporary file in the same folder,
+fsync, ``os.replace``), so a reader never sees half a verdict. The input
+file is never written to.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+from daemon.reader import RawTable, header_key
+from daemon.report import render
+from rules.model import Kind
+from rules.verdict import Result, Verdict
+
+#: Columns the flagged copy adds after the input's own.
+ADDED_COLUMNS = ("concentration", "uncertainty", "result_unit", "flags")
+_REPLACE_ATTEMPTS = 5  # Windows refuses os.replace while another process holds the target open
+
+
+def atomic_write(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so that ``path`` holds either the old or the new content."""
+    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(handle, "wb") as stream:
+            stream.write(data)
+            stream.flush()
+            os.fsync(stream.fileno())
+        for attempt in range(_REPLACE_ATTEMPTS):
+            try:
+                os.replace(temporary, path)
+                break
+            except PermissionError:
+                if attempt == _REPLACE_ATTEMPTS - 1:
+                    raise
+                time.sleep(0.05 * 2**attempt)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+
+
+def _cell(value: float | None) -> str:
+    return "" if value is None else repr(float(value))
+
+
+def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
+    """The input's rows and columns, each row followed by its concentration and flags."""
+    by_line: dict[int, Result] = {r.line: r for r in verdict.results if r.line is not None}
+    addition_rows: dict[tuple[str, int], Result] = {}
+    for series in verdict.additions:
+        result = next(
+            (
+                r
+                for r in verdict.results
+                if r.kind is Kind.ADDITION
+                and r.seq == series.seqs[0]
+                and r.analyte == series.analyte
+            ),
+            None,
+        )
+        if result is not None:
+            for seq in series.seqs:
+                addition_rows[(series.analyte, seq)] = result
+    back_calculated: dict[int, float | None] = {
+        s.line: s.back_calculated for c in verdict.calibrations for s in c.standards
+    }
+    header = list(table.header)
+    added = [name if name not in header else f"{name}_calwarden" for name in ADDED_COLUMNS]
+    buffer = io.StringIO(newline="")
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow([*header, *added])
+    keys = [header_key(name) for name in header]
+    seq_column = keys.index("seq") if "seq" in keys else None
+    analyte_column = keys.index("analyte") if "analyte" in keys else None
+    for row in table.rows:
+        result = by_line.get(row.line)
+        if result is None and seq_column is not None and analyte_column is not None:
+            try:
+                key = (row.fields[analyte_column].strip(), int(row.fields[seq_column]))
+                result = addition_rows.get(key)
+            except (ValueError, IndexError):
+                result = None
+        if result is not None:
+            extra = [
+                _cell(result.concentration),
+                _cell(result.uncertainty),
+                result.unit or "",
+                " ".join(flag.value for flag in result.flags),
+            ]
+        elif row.line in back_calculated:
+            extra = [_cell(back_calculated[row.line]), "", "", ""]
+        else:
+            extra = ["", "", "", ""]
+        writer.writerow([*row.fields, *extra])
+    return buffer.getvalue().encode("utf-8")
+
+
+def write_outputs(
+    out_dir: Path,
+    stem: str,
+    document: dict[str, Any],
+    table: RawTable | None = None,
+    verdict: Verdict | None = None,
+) -> list[Path]:
+    """Write the verdict JSON, the report and (when the file was read) the flagged copy."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    written = []
+    if table is not None and verdict is not None:
+        flagged = out_dir / f"{stem}.flagged.csv"
+        atomic_write(flagged, flagged_csv(table, verdict))
+        written.append(flagged)
+    report = out_dir / f"{stem}.report.txt"
+    atomic_write(report, render(document).encode("utf-8"))
+    written.append(report)
+    # The verdict last: its presence says the other files of this evaluation are complete.
+    verdict_path = out_dir / f"{stem}.verdict.json"
+    atomic_write(verdict_path, (json.dumps(document, indent=2, ensure_ascii=False) + "\n").encode())
+    written.append(verdict_path)
+    return written

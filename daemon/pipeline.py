@@ -1,0 +1,68 @@
+"""One file through the whole flow: read, normalise, evaluate, describe.
+
+The watcher (later) and ``calwarden check`` both call :func:`judge_file`, so
+a file is judged the same way whichever way it arrives.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from daemon.config import AppConfig
+from daemon.reader import RawTable, read_native
+from daemon.verdict_json import verdict_to_json
+from rules.errors import InputError
+from rules.evaluate import evaluate
+from rules.verdict import Status, Verdict
+
+
+@dataclass(frozen=True, slots=True)
+class Judgement:
+    """The verdict document of one file, and what the flagged copy needs."""
+
+    document: dict[str, Any]
+    table: RawTable | None
+    verdict: Verdict | None
+
+    @property
+    def status(self) -> Status:
+        return Status(self.document["status"])
+
+
+def _file_sha256(path: Path) -> str | None:
+    try:
+        with path.open("rb") as stream:
+            return hashlib.file_digest(stream, "sha256").hexdigest()
+    except OSError:
+        return None
+
+
+def error_document(path: Path, message: str, criteria_sha256: str | None) -> dict[str, Any]:
+    """The verdict JSON of a file that could not be evaluated."""
+    verdict = Verdict(Status.ERROR, None, None, (), (), (), error=message)
+    return verdict_to_json(
+        verdict, source_path=str(path), sha256=_file_sha256(path), criteria_sha256=criteria_sha256
+    )
+
+
+def judge_file(path: Path, config: AppConfig) -> Judgement:
+    """Judge one file; broken input gives an ``error`` verdict, never an exception.
+
+    A ConfigError (e.g. a disabled rule id that does not exist) propagates:
+    it is the configuration's fault, not the file's.
+    """
+    criteria_sha256 = config.criteria.digest()
+    try:
+        parsed = read_native(path)
+    except InputError as error:
+        return Judgement(error_document(path, str(error), criteria_sha256), None, None)
+    verdict = evaluate(parsed.run, config.criteria)
+    document = verdict_to_json(
+        verdict, source_path=str(path), sha256=parsed.sha256, criteria_sha256=criteria_sha256
+    )
+    if document["run"] is None:
+        document["run"] = path.stem
+    return Judgement(document, parsed.table, verdict)

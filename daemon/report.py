@@ -1,0 +1,157 @@
+"""The human-readable report, rendered from the verdict JSON document.
+
+Rendering from the JSON (not from the core's objects) keeps one source for
+every output and lets an ``error`` verdict, which has no core objects, be
+reported the same way.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+SEVERITY_ORDER = {"fail": 0, "warn": 1, "info": 2}
+_WORD = {"pass": "PASS", "fail": "FAIL", "error": "ERROR"}
+
+
+def _number(value: float | None, digits: int = 4) -> str:
+    if value is None:
+        return "-"
+    if value == 0:
+        return "0"
+    if 1e-3 <= abs(value) < 1e6:
+        return f"{value:.{digits}g}"
+    return f"{value:.{digits - 1}e}"
+
+
+def _heading(text: str, underline: str = "-") -> list[str]:
+    return ["", text, underline * len(text)]
+
+
+def status_line(document: dict[str, Any]) -> str:
+    """``FAIL: 3 failing findings, 2 warnings`` (or the error), one line."""
+    status = document["status"]
+    if status == "error":
+        return f"ERROR: {document.get('error') or 'the file could not be evaluated'}"
+    findings = document.get("findings", [])
+    fails = sum(1 for f in findings if f["severity"] == "fail")
+    warns = sum(1 for f in findings if f["severity"] == "warn")
+    parts = [f"{fails} failing finding{'s' * (fails != 1)}"] if fails else []
+    if warns:
+        parts.append(f"{warns} warning{'s' * (warns != 1)}")
+    return f"{_WORD[status]}: " + (", ".join(parts) if parts else "every criterion met")
+
+
+def _reruns(document: dict[str, Any]) -> list[str]:
+    reruns = document.get("reruns", [])
+    lines = _heading(f"Samples to re-run ({len(reruns)})")
+    if not reruns:
+        lines.append("none")
+    for entry in reruns:
+        analytes = ", ".join(entry["analytes"])
+        lines.append(f"{entry['sample_id']} (seq {entry['seq']}): {analytes}")
+        if entry.get("suggested_dilution"):
+            lines.append(
+                f"    dilute to {_number(entry['suggested_dilution'])}x in total before re-running"
+            )
+        for reason in entry.get("reasons", []):
+            lines.append(f"    - {reason}")
+    return lines
+
+
+def _findings(document: dict[str, Any]) -> list[str]:
+    findings = document.get("findings", [])
+    lines = _heading("Findings by analyte")
+    if not findings:
+        lines.append("none")
+        return lines
+    groups: dict[str, list[dict[str, Any]]] = {}
+    for finding in findings:
+        groups.setdefault(finding.get("analyte") or "(whole run)", []).append(finding)
+    for analyte, items in groups.items():
+        lines.append(f"{analyte}:")
+        for finding in sorted(items, key=lambda f: SEVERITY_ORDER[f["severity"]]):
+            lines.append(
+                f"  {finding['severity'].upper():<4}  {finding['message']}  [{finding['rule']}]"
+            )
+    return lines
+
+
+def _calibrations(document: dict[str, Any]) -> list[str]:
+    calibrations = document.get("calibrations", {})
+    lines = _heading("Calibrations")
+    if not calibrations:
+        lines.append("none (standard addition only, or no standards)")
+        return lines
+    header = ("analyte", "model", "weight", "levels", "r²", "s(y/x)", "range", "LOD", "LOQ")
+    rows = [header]
+    for analyte, c in calibrations.items():
+        low, high = c.get("range") or (None, None)
+        rows.append(
+            (
+                analyte,
+                str(c.get("model") or "none"),
+                str(c.get("weighting") or "-"),
+                str(c.get("levels", "-")),
+                f"{c['r_squared']:.5f}" if c.get("r_squared") is not None else "-",
+                _number(c.get("residual_sd")),
+                f"{_number(low)}–{_number(high)} {c.get('unit') or ''}".rstrip(),
+                _number(c.get("lod")),
+                _number(c.get("loq")),
+            )
+        )
+    lines.extend(_table(rows))
+    return lines
+
+
+def _results(document: dict[str, Any]) -> list[str]:
+    results = document.get("results", [])
+    lines = _heading(f"Results ({len(results)})")
+    rows = [("seq", "sample", "kind", "analyte", "concentration", "± u", "unit", "flags")]
+    for r in results:
+        rows.append(
+            (
+                str(r["seq"]),
+                r["sample_id"],
+                r["kind"],
+                r["analyte"],
+                _number(r["concentration"]),
+                _number(r["uncertainty"], 2),
+                r.get("unit") or "",
+                " ".join(r["flags"]),
+            )
+        )
+    lines.extend(_table(rows))
+    return lines
+
+
+def _table(rows: list[tuple[str, ...]]) -> list[str]:
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    return [
+        "  ".join(cell.ljust(width) for cell, width in zip(row, widths, strict=True)).rstrip()
+        for row in rows
+    ]
+
+
+def render(document: dict[str, Any], *, full: bool = True) -> str:
+    """The report; ``full=False`` gives the terminal summary (no calibration or result tables)."""
+    source = document.get("source", {})
+    sha = source.get("sha256")
+    lines = [
+        "calwarden QC report",
+        "===================",
+        f"run:        {document.get('run') or '-'}",
+        f"instrument: {document.get('instrument') or '-'}",
+        f"source:     {source.get('path')}" + (f" (sha256 {sha[:12]}…)" if sha else ""),
+        f"status:     {status_line(document)}",
+    ]
+    if full:
+        lines.append(
+            f"checked by: calwarden {document.get('calwarden_version')}, "
+            f"criteria {str(document.get('criteria_sha256') or '-')[:12]}"
+        )
+    if document["status"] != "error":
+        lines += _reruns(document) + _findings(document)
+        if full:
+            lines += _calibrations(document) + _results(document)
+    lines += ["", str(document.get("caution", ""))]
+    return "\n".join(lines) + "\n"

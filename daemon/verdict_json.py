@@ -1,0 +1,217 @@
+"""The verdict as JSON: the contract other tools may rely on.
+
+Stable keys (see README, "The verdict JSON"): ``status``, ``run``, ``source``,
+``calwarden_version``, ``criteria_sha256``, ``findings``, ``calibrations``,
+``results``, ``error``. More keys may be added; none is removed or renamed.
+"""
+
+from __future__ import annotations
+
+import math
+from importlib.metadata import PackageNotFoundError, version
+from typing import Any
+
+from rules.calibration import Fit
+from rules.verdict import AdditionSeries, Calibration, Finding, Flag, Result, Severity, Verdict
+
+SCHEMA_VERSION = 1
+CAUTION = (
+    "Automated screening supports, and does not replace, the analyst's review, the method's "
+    "own criteria, the laboratory's procedures and its accreditation rules."
+)
+
+
+def calwarden_version() -> str:
+    try:
+        return version("calwarden")
+    except PackageNotFoundError:
+        return "unknown"
+
+
+def _number(value: float | None) -> float | None:
+    """JSON has no NaN or infinity: such a number is reported as null."""
+    if value is None or not math.isfinite(value):
+        return None
+    return float(value)
+
+
+def _finding(finding: Finding, sample_ids: dict[int, str]) -> dict[str, Any]:
+    return {
+        "rule": finding.rule,
+        "severity": finding.severity.value,
+        "analyte": finding.analyte,
+        "sample_id": finding.sample_id,
+        "seq": finding.seq,
+        "value": _number(finding.value),
+        "limit": [_number(end) for end in finding.limit] if finding.limit else None,
+        "message": finding.message,
+        "affected": [{"seq": seq, "sample_id": sample_ids.get(seq)} for seq in finding.affected],
+    }
+
+
+def _fit(fit: Fit) -> dict[str, Any]:
+    return {
+        "model": fit.model.value,
+        "weighting": fit.weighting.value,
+        "coefficients": [_number(c) for c in fit.coefficients],
+        "std_errors": [_number(e) for e in fit.std_errors],
+        "covariance": [[_number(c) for c in row] for row in fit.covariance]
+        if fit.covariance is not None
+        else None,
+        "r_squared": _number(fit.r_squared),
+        "r": _number(fit.r),
+        "residual_sd": _number(fit.residual_sd),
+        "degrees_of_freedom": fit.dof,
+        "points": fit.points,
+        "levels": fit.levels,
+        "response_factor_mean": _number(fit.rf_mean),
+        "response_factor_rsd_pct": _number(fit.rf_rsd_pct),
+    }
+
+
+def _calibration(calibration: Calibration) -> dict[str, Any]:
+    fit = calibration.fit
+    data: dict[str, Any] = {
+        "model": fit.model.value if fit else None,
+        "weighting": fit.weighting.value if fit else None,
+        "coefficients": None,
+        "std_errors": None,
+        "r_squared": None,
+        "residual_sd": None,
+        "points": len(calibration.standards),
+    }
+    if fit:
+        data.update(_fit(fit))
+    data.update(
+        {
+            "range": [_number(calibration.range_low), _number(calibration.range_high)],
+            "unit": calibration.unit,
+            "blank_response_subtracted": _number(calibration.blank_signal),
+            "internal_standard": calibration.uses_internal_standard,
+            "internal_standard_reference": _number(calibration.istd_reference),
+            "rse_pct": _number(calibration.rse_pct),
+            "mandel": {
+                "statistic": _number(calibration.mandel.statistic),
+                "critical": _number(calibration.mandel.critical),
+                "alpha": calibration.mandel.alpha,
+                "significant": calibration.mandel.significant,
+            }
+            if calibration.mandel
+            else None,
+            "lod": _number(calibration.lod),
+            "loq": _number(calibration.loq),
+            "problem": calibration.problem,
+            "standards": [
+                {
+                    "sample_id": s.sample_id,
+                    "seq": s.seq,
+                    "nominal": _number(s.nominal),
+                    "response": _number(s.signal),
+                    "back_calculated": _number(s.back_calculated),
+                    "error_pct": _number(s.error_pct),
+                }
+                for s in calibration.standards
+            ],
+        }
+    )
+    return data
+
+
+def _result(result: Result) -> dict[str, Any]:
+    return {
+        "sample_id": result.sample_id,
+        "seq": result.seq,
+        "kind": result.kind.value,
+        "analyte": result.analyte,
+        "concentration": _number(result.concentration),
+        "uncertainty": _number(result.uncertainty),
+        "unit": result.unit,
+        "measured": _number(result.measured),
+        "dilution": _number(result.dilution),
+        "response": _number(result.signal),
+        "flags": [flag.value for flag in result.flags],
+        "suggested_dilution": _number(result.suggested_dilution),
+    }
+
+
+def _addition(series: AdditionSeries) -> dict[str, Any]:
+    outcome = series.outcome
+    return {
+        "analyte": series.analyte,
+        "parent": series.parent,
+        "seqs": list(series.seqs),
+        "added": [_number(a) for a in series.added],
+        "responses": [_number(s) for s in series.signals],
+        "dilution": _number(series.dilution),
+        "concentration_measured": _number(outcome.concentration) if outcome else None,
+        "std_dev_measured": _number(outcome.std_dev) if outcome else None,
+        "fit": _fit(outcome.fit) if outcome else None,
+        "problem": series.problem,
+    }
+
+
+def verdict_to_json(
+    verdict: Verdict,
+    *,
+    source_path: str,
+    sha256: str | None,
+    criteria_sha256: str | None,
+) -> dict[str, Any]:
+    """The verdict JSON document."""
+    sample_ids = {r.seq: r.sample_id for r in verdict.results if r.seq is not None}
+    for calibration in verdict.calibrations:
+        sample_ids.update({s.seq: s.sample_id for s in calibration.standards})
+    return {
+        "schema_version": SCHEMA_VERSION,
+        "status": verdict.status.value,
+        "run": verdict.run,
+        "instrument": verdict.instrument,
+        "source": {"path": source_path, "sha256": sha256},
+        "calwarden_version": calwarden_version(),
+        "criteria_sha256": criteria_sha256,
+        "caution": CAUTION,
+        "findings": [_finding(f, sample_ids) for f in verdict.findings],
+        "calibrations": {c.analyte: _calibration(c) for c in verdict.calibrations},
+        "results": [_result(r) for r in verdict.results],
+        "additions": [_addition(a) for a in verdict.additions],
+        "reruns": rerun_list(verdict),
+        "error": verdict.error,
+    }
+
+
+def rerun_list(verdict: Verdict) -> list[dict[str, Any]]:
+    """One entry per injection to re-run: its analytes, flags and the findings that say why."""
+    why: dict[tuple[int | None, str], list[str]] = {}
+    for finding in verdict.findings:
+        if finding.severity is Severity.FAIL and finding.analyte is not None:
+            # A finding about the whole analyte (its calibration) concerns every result of it.
+            for seq in finding.affected or (None,):
+                why.setdefault((seq, finding.analyte), []).append(finding.message)
+    entries: dict[tuple[int | None, str], dict[str, Any]] = {}
+    for result in verdict.reruns():
+        entry = entries.setdefault(
+            (result.seq, result.sample_id),
+            {
+                "sample_id": result.sample_id,
+                "seq": result.seq,
+                "analytes": [],
+                "flags": [],
+                "suggested_dilution": None,
+                "reasons": [],
+            },
+        )
+        entry["analytes"].append(result.analyte)
+        for flag in result.flags:
+            if flag.value not in entry["flags"]:
+                entry["flags"].append(flag.value)
+        if result.suggested_dilution is not None:
+            entry["suggested_dilution"] = max(
+                entry["suggested_dilution"] or 0.0, result.suggested_dilution
+            )
+        messages = why.get((result.seq, result.analyte), [])
+        if Flag.CALIBRATION_FAILED in result.flags:
+            messages = messages + why.get((None, result.analyte), [])
+        for message in messages:
+            if message not in entry["reasons"]:
+                entry["reasons"].append(message)
+    return list(entries.values())
