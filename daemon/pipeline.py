@@ -42,7 +42,7 @@ def _file_sha256(path: Path) -> str | None:
 
 def error_document(path: Path, message: str, criteria_sha256: str | None) -> dict[str, Any]:
     """The verdict JSON of a file that could not be evaluated."""
-    verdict = Verdict(Status.ERROR, None, None, (), (), (), error=message)
+    verdict = Verdict(Status.ERROR, path.stem, None, (), (), (), error=message)
     return verdict_to_json(
         verdict, source_path=str(path), sha256=_file_sha256(path), criteria_sha256=criteria_sha256
     )

@@ -10,6 +10,16 @@ from __future__ import annotations
 from typing import Any
 
 SEVERITY_ORDER = {"fail": 0, "warn": 1, "info": 2}
+#: Flags in plain words, for the re-run list.
+FLAG_WORDS = {
+    "over_range": "over range",
+    "calibration_failed": "calibration failed",
+    "no_calibration": "no usable calibration",
+    "check_failed": "a bracketing check standard failed",
+    "not_bracketed": "not bracketed by check standards",
+    "istd_out": "internal standard out of limits",
+    "not_quantifiable": "no concentration on the curve gives this response",
+}
 _WORD = {"pass": "PASS", "fail": "FAIL", "error": "ERROR"}
 
 
@@ -47,14 +57,14 @@ def _reruns(document: dict[str, Any]) -> list[str]:
     if not reruns:
         lines.append("none")
     for entry in reruns:
-        analytes = ", ".join(entry["analytes"])
-        lines.append(f"{entry['sample_id']} (seq {entry['seq']}): {analytes}")
+        why = "; ".join(
+            f"{analyte} " + ", ".join(FLAG_WORDS[f] for f in flags if f in FLAG_WORDS)
+            for analyte, flags in entry["by_analyte"].items()
+        )
+        line = f"{entry['sample_id']} (seq {entry['seq']}): {why}"
         if entry.get("suggested_dilution"):
-            lines.append(
-                f"    dilute to {_number(entry['suggested_dilution'])}x in total before re-running"
-            )
-        for reason in entry.get("reasons", []):
-            lines.append(f"    - {reason}")
+            line += f"; dilute to {_number(entry['suggested_dilution'])}x in total"
+        lines.append(line)
     return lines
 
 

@@ -196,11 +196,13 @@ def rerun_list(verdict: Verdict) -> list[dict[str, Any]]:
                 "seq": result.seq,
                 "analytes": [],
                 "flags": [],
+                "by_analyte": {},
                 "suggested_dilution": None,
                 "reasons": [],
             },
         )
         entry["analytes"].append(result.analyte)
+        entry["by_analyte"][result.analyte] = [flag.value for flag in result.flags]
         for flag in result.flags:
             if flag.value not in entry["flags"]:
                 entry["flags"].append(flag.value)

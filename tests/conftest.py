@@ -1,0 +1,24 @@
+"""Shared test set-up: every test must leave no thread running behind it."""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+
+PROJECT = Path(__file__).resolve().parent.parent
+FIXTURES = PROJECT / "fixtures"
+
+
+@pytest.fixture(autouse=True)
+def no_leaked_threads() -> Iterator[None]:
+    """Fail a test that leaves a thread running (a watcher or sender not stopped)."""
+    before = set(threading.enumerate())
+    yield
+    leaked = [t for t in threading.enumerate() if t not in before and t.is_alive()]
+    for thread in leaked:
+        thread.join(timeout=2)
+    still = [t.name for t in leaked if t.is_alive()]
+    assert not still, f"threads left running: {still}"
