@@ -57,7 +57,8 @@ class AnalyteCriteria(_Frozen):
     istd_recovery_pct: Range = (70.0, 130.0)
     # --- duplicates, spikes and control samples: 6010D / 6020B [memory].
     duplicate_max_rpd_pct: float = Field(default=20.0, gt=0)
-    duplicate_min_multiple: float = Field(default=5.0, ge=0)  # of the lowest level, for RPD to apply
+    # RPD judged only when both results reach this multiple of the lowest standard.
+    duplicate_min_multiple: float = Field(default=5.0, ge=0)
     spike_recovery_pct: Range = (75.0, 125.0)
     spike_max_native_ratio: float = Field(default=4.0, gt=0)  # native > 4× spike: not judged
     lcs_recovery_pct: Range = (80.0, 120.0)

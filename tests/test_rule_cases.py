@@ -62,8 +62,6 @@ def test_every_rule_has_a_passing_and_a_failing_case() -> None:
     """Each registered rule has at least one pass case and one case that finds something."""
     expectations: dict[str, set[str]] = {}
     for rule_id, case in ALL_CASES:
-        expectations.setdefault(rule_id, set()).add(
-            "pass" if case["expect"] == "pass" else "finds"
-        )
+        expectations.setdefault(rule_id, set()).add("pass" if case["expect"] == "pass" else "finds")
     missing = [r.id for r in all_rules() if expectations.get(r.id) != {"pass", "finds"}]
     assert not missing, f"rules without both a pass and a failing case: {missing}"

@@ -1,0 +1,124 @@
+"""`calwarden check` and `calwarden rules`: exit codes, output, files written."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from daemon.cli import main
+
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+PASSING = FIXTURES / "bwl-metals-pass.csv"
+FAILING = FIXTURES / "bwl-metals-fail.csv"
+BROKEN = FIXTURES / "bwl-bad-missing-nominal.csv"
+
+
+@pytest.mark.parametrize(
+    ("path", "code"), [(PASSING, 0), (FAILING, 1), (BROKEN, 2)], ids=["pass", "fail", "error"]
+)
+def test_exit_code_follows_the_status(
+    path: Path, code: int, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """check exits 0 on pass, 1 on fail and 2 on a file that cannot be evaluated."""
+    assert main(["check", str(path)]) == code
+
+
+@pytest.mark.parametrize("path", [PASSING, FAILING, BROKEN], ids=["pass", "fail", "error"])
+def test_json_flag_prints_only_the_verdict(path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """With --json, stdout is exactly one JSON document, also for an error."""
+    main(["check", str(path), "--json"])
+    out = capsys.readouterr().out
+    document = json.loads(out)
+    assert document["source"]["path"] == str(path)
+    assert document["status"] in {"pass", "fail", "error"}
+
+
+def test_summary_names_the_samples_to_rerun(capsys: pytest.CaptureFixture[str]) -> None:
+    """The readable summary lists each sample to re-run and why."""
+    main(["check", str(FAILING)])
+    out = capsys.readouterr().out
+    assert "BW-1124-18 (seq 38): Cu over range; dilute to 5x in total" in out
+    assert "Samples to re-run (13)" in out
+
+
+def test_out_writes_verdict_flagged_copy_and_report(tmp_path: Path) -> None:
+    """--out writes the three files, and the flagged copy keeps every input row and column."""
+    main(["check", str(FAILING), "--out", str(tmp_path)])
+    names = sorted(p.name for p in tmp_path.iterdir())
+    assert names == [
+        "bwl-metals-fail.flagged.csv",
+        "bwl-metals-fail.report.txt",
+        "bwl-metals-fail.verdict.json",
+    ]
+    source = FAILING.read_text(encoding="utf-8").splitlines()
+    flagged = (tmp_path / "bwl-metals-fail.flagged.csv").read_text(encoding="utf-8").splitlines()
+    assert len(flagged) == len(source)
+    assert flagged[0] == source[0] + ",concentration,uncertainty,result_unit,flags"
+    assert all(row.startswith(original) for row, original in zip(flagged, source, strict=True))
+
+
+def test_flagged_copy_marks_the_over_range_sample(tmp_path: Path) -> None:
+    """The flagged copy carries the over_range flag on the over-range sample's Cu row."""
+    main(["check", str(FAILING), "--out", str(tmp_path)])
+    rows = (tmp_path / "bwl-metals-fail.flagged.csv").read_text(encoding="utf-8").splitlines()
+    cu_18 = [r for r in rows if r.startswith("38,BW-1124-18,sample,Cu,")]
+    assert len(cu_18) == 1 and cu_18[0].endswith("over_range")
+
+
+def test_error_verdict_is_written_too(tmp_path: Path) -> None:
+    """A file that cannot be evaluated still gets a verdict and a report, with the reason."""
+    assert main(["check", str(BROKEN), "--out", str(tmp_path)]) == 2
+    document = json.loads((tmp_path / "bwl-bad-missing-nominal.verdict.json").read_text("utf-8"))
+    assert document["status"] == "error"
+    assert "line 15" in document["error"] and "nominal" in document["error"]
+
+
+def test_bad_config_exits_2_with_a_message(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """An invalid configuration gives exit 2 and a one-line message naming the key."""
+    config = tmp_path / "lab.yaml"
+    config.write_text("criteria:\n  defaults:\n    ccv_recovery: [90, 110]\n", encoding="utf-8")
+    assert main(["check", str(PASSING), "--config", str(config)]) == 2
+    err = capsys.readouterr().err
+    assert "criteria.defaults.ccv_recovery: unknown key (did you mean ccv_recovery_pct?)" in err
+
+
+def test_missing_file_is_an_error_verdict(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A path that does not exist is judged error with exit 2, not a traceback."""
+    assert main(["check", str(tmp_path / "absent.csv"), "--json"]) == 2
+    assert json.loads(capsys.readouterr().out)["status"] == "error"
+
+
+def test_rules_lists_every_rule(capsys: pytest.CaptureFixture[str]) -> None:
+    """`calwarden rules` lists each rule id with its summary."""
+    assert main(["rules"]) == 0
+    out = capsys.readouterr().out
+    assert "check.recovery" in out and "range.over" in out
+
+
+def test_rules_explains_one_rule(capsys: pytest.CaptureFixture[str]) -> None:
+    """`calwarden rules ID` prints the rule's explanation with its source."""
+    assert main(["rules", "check.recovery"]) == 0
+    assert "6010D" in capsys.readouterr().out
+
+
+def test_installed_command_runs_without_traceback(tmp_path: Path) -> None:
+    """The console entry point, run as a process, prints no traceback on garbage input."""
+    garbage = tmp_path / "garbage.csv"
+    garbage.write_bytes(bytes(range(256)) * 8)
+    result = subprocess.run(
+        [sys.executable, "-m", "daemon", "check", str(garbage)],
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    assert result.returncode == 2
+    assert "Traceback" not in result.stdout + result.stderr
+    assert "binary" in result.stdout

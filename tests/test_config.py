@@ -1,0 +1,85 @@
+"""Configuration and criteria: defaults as documented, overrides, errors in plain words."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from daemon.config import load_config, parse_yaml
+from rules.criteria import AnalyteCriteria, Criteria, build_criteria
+from rules.errors import ConfigError
+from rules.evaluate import active_rules
+
+CONFIG = Path(__file__).resolve().parent.parent / "config"
+
+
+def test_documented_defaults_equal_the_code_defaults() -> None:
+    """config/criteria.yaml holds exactly the defaults of rules/criteria.py."""
+    written = load_config(CONFIG / "criteria.yaml").criteria
+    assert written == Criteria()
+
+
+def test_every_shipped_example_configuration_is_valid() -> None:
+    """Each YAML file in config/ loads without error."""
+    for path in sorted(CONFIG.glob("*.yaml")):
+        load_config(path)
+
+
+def test_per_analyte_override_changes_only_its_keys() -> None:
+    """An analyte override changes the keys it names and keeps every other default."""
+    criteria = build_criteria({"analytes": {"Zn": {"ccv_recovery_pct": [85, 115]}}})
+    zinc = criteria.for_analyte("Zn")
+    assert zinc.ccv_recovery_pct == (85, 115)
+    assert zinc.icv_recovery_pct == AnalyteCriteria().icv_recovery_pct
+    assert criteria.for_analyte("Cu") == AnalyteCriteria()
+
+
+def test_misspelt_key_names_the_path_and_suggests_the_right_one(tmp_path: Path) -> None:
+    """A misspelt key is reported with its dotted path and a did-you-mean hint."""
+    path = tmp_path / "lab.yaml"
+    path.write_text("criteria:\n  defaults:\n    min_r_sqared: 0.99\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"criteria\.defaults\.min_r_sqared: unknown key"
+                       r" \(did you mean min_r_squared\?\)"):  # fmt: skip
+        load_config(path)
+
+
+def test_bad_override_value_names_the_analyte(tmp_path: Path) -> None:
+    """A wrong value in an analyte override names that analyte and key."""
+    path = tmp_path / "lab.yaml"
+    path.write_text("criteria:\n  analytes:\n    Zn: {min_r_squared: 2}\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"analytes\.Zn: min_r_squared"):
+        load_config(path)
+
+
+def test_duplicate_yaml_key_is_refused() -> None:
+    """A key given twice in the YAML is an error, not a silent last-one-wins."""
+    with pytest.raises(ConfigError, match="line 3: key 'model' is given twice"):
+        parse_yaml("defaults:\n  model: linear\n  model: quadratic\n", "lab.yaml")
+
+
+def test_inverted_recovery_limits_are_refused() -> None:
+    """A recovery window whose low end is above its high end is refused."""
+    with pytest.raises(ConfigError, match="low limit"):
+        build_criteria({"defaults": {"lcs_recovery_pct": [120, 80]}})
+
+
+def test_unknown_disabled_rule_is_a_config_error() -> None:
+    """Switching off a rule id that does not exist is a configuration error."""
+    with pytest.raises(ConfigError, match=r"unknown rule id 'check\.recovry'"):
+        active_rules(build_criteria({"disabled_rules": ["check.recovry"]}))
+
+
+def test_digest_ignores_the_order_of_disabled_rules() -> None:
+    """The criteria hash does not change when disabled rules are listed in another order."""
+    first = build_criteria({"disabled_rules": ["range.under", "calibration.linearity"]})
+    second = build_criteria({"disabled_rules": ["calibration.linearity", "range.under"]})
+    assert first.digest() == second.digest()
+
+
+def test_yaml_syntax_error_names_the_line(tmp_path: Path) -> None:
+    """Broken YAML is reported with its line, not a traceback."""
+    path = tmp_path / "lab.yaml"
+    path.write_text("criteria:\n  defaults: [unclosed\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match="not valid YAML"):
+        load_config(path)
