@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import csv
 import io
-import json
 import os
 import tempfile
 import time
@@ -18,6 +17,7 @@ from typing import Any
 
 from daemon.reader import RawTable, header_key
 from daemon.report import render
+from daemon.verdict_json import dump_verdict
 from rules.model import Kind
 from rules.verdict import Result, Verdict
 
@@ -122,6 +122,6 @@ def write_outputs(
     written.append(report)
     # The verdict last: its presence says the other files of this evaluation are complete.
     verdict_path = out_dir / f"{stem}.verdict.json"
-    atomic_write(verdict_path, (json.dumps(document, indent=2, ensure_ascii=False) + "\n").encode())
+    atomic_write(verdict_path, (dump_verdict(document) + "\n").encode("utf-8"))
     written.append(verdict_path)
     return written

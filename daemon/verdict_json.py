@@ -7,6 +7,7 @@ Stable keys (see README, "The verdict JSON"): ``status``, ``run``, ``source``,
 
 from __future__ import annotations
 
+import json
 import math
 from importlib.metadata import PackageNotFoundError, version
 from typing import Any
@@ -19,6 +20,18 @@ CAUTION = (
     "Automated screening supports, and does not replace, the analyst's review, the method's "
     "own criteria, the laboratory's procedures and its accreditation rules."
 )
+
+
+#: Above this many results the verdict is written on one line: Python's indenting encoder
+#: is ten times slower than its compact one and would dominate a large run's check time.
+PRETTY_RESULTS_LIMIT = 2000
+
+
+def dump_verdict(document: dict[str, Any]) -> str:
+    """The verdict as JSON text: indented for people, compact for very large runs."""
+    if len(document.get("results", ())) <= PRETTY_RESULTS_LIMIT:
+        return json.dumps(document, indent=2, ensure_ascii=False)
+    return json.dumps(document, ensure_ascii=False, separators=(",", ":"))
 
 
 def calwarden_version() -> str:

@@ -530,6 +530,52 @@ class MandelResult:
     significant: bool
 
 
+def _student_t_central_probability(t: float, dof: int) -> float:
+    """P(|T| ≤ t) for Student's t with integer ``dof``, in closed form.
+
+    Abramowitz & Stegun, Handbook of Mathematical Functions, 26.7.3 and 26.7.4
+    (θ = atan(t/√ν)); exact for integer degrees of freedom, no special functions.
+    """
+    theta = math.atan(t / math.sqrt(dof))
+    cos2 = math.cos(theta) ** 2
+    if dof % 2 == 1:
+        if dof == 1:
+            return 2.0 * theta / math.pi
+        term, total = math.cos(theta), math.cos(theta)
+        for k in range(3, dof - 1, 2):  # next power of cosθ: ·(k−1)/k·cos²θ
+            term *= (k - 1) / k * cos2
+            total += term
+        return 2.0 / math.pi * (theta + math.sin(theta) * total)
+    term, total = 1.0, 1.0
+    for k in range(2, dof - 1, 2):
+        term *= (k - 1) / k * cos2
+        total += term
+    return math.sin(theta) * total
+
+
+def f_quantile_one_numerator(probability: float, denominator_dof: int) -> float:
+    """The ``probability`` quantile of F(1, ν): the square of t(½ + ½·probability; ν).
+
+    Solved by bisection on the closed-form t distribution, so the core needs no
+    scipy at run time (a cold ``calwarden check`` stays fast); tests compare it
+    with scipy.special.fdtri.
+    """
+    if not 0.0 < probability < 1.0 or denominator_dof < 1:
+        raise ValueError("probability must be in (0, 1) and the degrees of freedom at least 1")
+    low, high = 0.0, 1.0
+    while _student_t_central_probability(high, denominator_dof) < probability:
+        high *= 2.0
+    for _ in range(200):
+        middle = 0.5 * (low + high)
+        if middle in (low, high):
+            break
+        if _student_t_central_probability(middle, denominator_dof) < probability:
+            low = middle
+        else:
+            high = middle
+    return (0.5 * (low + high)) ** 2
+
+
 def mandel_test(x: Sequence[float], y: Sequence[float], alpha: float = 0.01) -> MandelResult | None:
     """Mandel's test on unweighted fits; ``None`` with fewer than 4 points.
 
@@ -552,9 +598,7 @@ def mandel_test(x: Sequence[float], y: Sequence[float], alpha: float = 0.01) -> 
     # An exact quadratic (s² = 0): curvature is either certain or absent.
     statistic = ds2 / var_quad if var_quad > 0.0 else (math.inf if ds2 > 0.0 else 0.0)
     # Lazy: scipy costs a cold CLI start more than the whole budget for importing.
-    from scipy.special import fdtri
-
-    critical = float(fdtri(1.0, float(n - 3), 1.0 - alpha))
+    critical = f_quantile_one_numerator(1.0 - alpha, n - 3)
     return MandelResult(
         statistic=statistic, critical=critical, alpha=alpha, significant=statistic > critical
     )

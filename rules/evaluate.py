@@ -37,8 +37,8 @@ from rules.verdict import (
     Verdict,
 )
 
-#: Kinds that are part of the calibration, not results.
-_CALIBRATION_KINDS = frozenset({Kind.BLANK, Kind.CAL})
+#: Kinds that are not read off the curve one by one: calibration points and addition points.
+_NOT_QUANTITATED = frozenset({Kind.BLANK, Kind.CAL, Kind.ADDITION})
 #: Mandel's test needs this many levels to say anything (ISO 8466-1 asks for at least 5).
 _MANDEL_MIN_LEVELS = 5
 
@@ -76,8 +76,8 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
         results.extend(judged[2])
         additions.extend(judged[3])
 
-    order = {analyte: index for index, analyte in enumerate(run.analytes)}
-    results.sort(key=lambda r: (r.seq if r.seq is not None else -1, order[r.analyte]))
+    # Stable sort: within one seq the analytes keep the run's order.
+    results.sort(key=_seq_of)
     failed = any(f.severity is Severity.FAIL for f in findings)
     return Verdict(
         status=Status.FAIL if failed else Status.PASS,
@@ -88,6 +88,10 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
         results=tuple(results),
         additions=tuple(additions),
     )
+
+
+def _seq_of(result: Result) -> int:
+    return result.seq if result.seq is not None else -1
 
 
 def _judge_analyte(
@@ -101,9 +105,8 @@ def _judge_analyte(
 
     preliminary: dict[int, Result] = {}
     for reading in rows:
-        if reading.kind in _CALIBRATION_KINDS or reading.kind is Kind.ADDITION:
-            continue
-        preliminary[reading.seq] = _quantitate(reading, fit, blank_signal, unit)
+        if reading.kind not in _NOT_QUANTITATED:
+            preliminary[reading.seq] = _quantitate(reading, fit, blank_signal, unit)
     for addition in series.values():
         preliminary[addition.seqs[0]] = _addition_result(addition, unit)
 

@@ -621,3 +621,15 @@ def test_quadratic_root_without_cancellation() -> None:
     x = [0.0, 2.0, 4.0, 6.0, 8.0, 10.0]
     fit = fit_calibration(x, [1.0 + v + 1e-12 * v * v for v in x], Model.QUADRATIC)
     assert fit.invert(fit.predict(3.0)) == pytest.approx(3.0, rel=1e-13)
+
+
+@pytest.mark.parametrize("dof", [1, 2, 3, 4, 5, 7, 10, 18, 37, 100, 1000])
+@pytest.mark.parametrize("alpha", [0.05, 0.01, 0.001])
+def test_f_quantile_matches_scipy(dof: int, alpha: float) -> None:
+    """The closed-form F(1, ν) quantile Mandel's test uses equals scipy.special.fdtri to 1e-10."""
+    from scipy.special import fdtri
+
+    from rules.calibration import f_quantile_one_numerator
+
+    expected = float(fdtri(1.0, float(dof), 1.0 - alpha))
+    assert f_quantile_one_numerator(1.0 - alpha, dof) == pytest.approx(expected, rel=1e-10)
