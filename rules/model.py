@@ -48,6 +48,9 @@ FIELD_KINDS = frozenset({Kind.SAMPLE, Kind.DUP, Kind.MS, Kind.MSD, Kind.LCS, Kin
 REPORTABLE_KINDS = frozenset({Kind.SAMPLE, Kind.DUP, Kind.MS, Kind.MSD, Kind.LCS})
 
 
+_NUMERIC_COLUMNS = ("response", "nominal", "istd_response", "dilution", "added")
+
+
 def _require_finite(value: float | None, line: int, column: str) -> None:
     if value is not None and not math.isfinite(value):
         raise InputError(f"number must be finite, got {value!r}", line, column)
@@ -79,8 +82,13 @@ class Reading:
             raise InputError("sample_id is empty", self.line, "sample_id")
         if not self.analyte:
             raise InputError("analyte is empty", self.line, "analyte")
-        for column in ("response", "nominal", "istd_response", "dilution", "added"):
-            _require_finite(getattr(self, column), self.line, column)
+        # One sum is finite exactly when every term is (any NaN or infinity makes it so):
+        # a cheap first test on the hot path, then the precise one names the column.
+        total = self.response + self.dilution
+        total += (self.nominal or 0.0) + (self.istd_response or 0.0) + (self.added or 0.0)
+        if not math.isfinite(total):
+            for column in _NUMERIC_COLUMNS:
+                _require_finite(getattr(self, column), self.line, column)
         if self.dilution <= 0:
             raise InputError(
                 f"dilution must be greater than zero, got {self.dilution:g}", self.line, "dilution"
