@@ -63,6 +63,4 @@ def judge_file(path: Path, config: AppConfig) -> Judgement:
     document = verdict_to_json(
         verdict, source_path=str(path), sha256=parsed.sha256, criteria_sha256=criteria_sha256
     )
-    if document["run"] is None:
-        document["run"] = path.stem
     return Judgement(document, parsed.table, verdict)

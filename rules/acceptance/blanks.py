@@ -31,7 +31,7 @@ def blank_contamination(context: AnalyteContext) -> Iterator[Finding]:
     for reading in context.of_kind(Kind.CCB, Kind.MB):
         result = result_of(context, reading)
         if result is None or result.measured is None:
-            continue  # not quantifiable: calibration.present already says so
+            continue  # not quantifiable: calibration.present or range.on_curve says so
         if abs(result.measured) >= limit:
             yield Finding(
                 "blank.contamination",

@@ -8,14 +8,13 @@ from rules.acceptance.common import (
     check_limits,
     check_recovery,
     number,
+    recovery_finding,
     recovery_pct,
     result_of,
-    span,
-    within,
 )
 from rules.model import Kind
 from rules.registry import AnalyteContext, rule
-from rules.verdict import Finding, Flag, Severity
+from rules.verdict import Finding
 
 
 @rule("check.recovery", "ICV and CCV concentrations recover within limits")
@@ -32,21 +31,9 @@ def check_standard_recovery(context: AnalyteContext) -> Iterator[Finding]:
     for reading in context.of_kind(Kind.ICV, Kind.CCV):
         recovery = check_recovery(context, reading)
         limits = check_limits(context, reading.kind)
-        if recovery is not None and within(recovery, limits):
-            continue
-        found = "cannot be quantitated" if recovery is None else f"recovered {recovery:.1f} %"
-        yield Finding(
-            "check.recovery",
-            Severity.FAIL,
-            f"{reading.sample_id} {context.analyte} {found}, limit {span(limits)}",
-            analyte=context.analyte,
-            sample_id=reading.sample_id,
-            seq=reading.seq,
-            value=recovery,
-            limit=limits,
-            flag=Flag.QC_FAILED,
-            affected=(reading.seq,),
-        )
+        finding = recovery_finding("check.recovery", context, reading, recovery, limits)
+        if finding:
+            yield finding
 
 
 @rule("lcs.recovery", "Laboratory control samples recover within limits")
@@ -63,19 +50,7 @@ def lcs_recovery(context: AnalyteContext) -> Iterator[Finding]:
     for reading in context.of_kind(Kind.LCS):
         result = result_of(context, reading)
         recovery = recovery_pct(result.concentration if result else None, reading.nominal)
-        if recovery is not None and within(recovery, limits):
-            continue
-        found = "cannot be quantitated" if recovery is None else f"recovered {recovery:.1f} %"
-        yield Finding(
-            "lcs.recovery",
-            Severity.FAIL,
-            f"{reading.sample_id} {context.analyte} {found} of {number(reading.nominal or 0)}"
-            f"{context.unit}, limit {span(limits)}",
-            analyte=context.analyte,
-            sample_id=reading.sample_id,
-            seq=reading.seq,
-            value=recovery,
-            limit=limits,
-            flag=Flag.QC_FAILED,
-            affected=(reading.seq,),
-        )
+        detail = f" of {number(reading.nominal or 0)}{context.unit}"
+        finding = recovery_finding("lcs.recovery", context, reading, recovery, limits, detail)
+        if finding:
+            yield finding

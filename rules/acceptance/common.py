@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+
 from rules.criteria import Range
-from rules.model import Kind, Reading
+from rules.model import REPORTABLE_KINDS, Kind, Reading
 from rules.registry import AnalyteContext
-from rules.verdict import Result
+from rules.verdict import Finding, Flag, Result, Severity
 
 
 def number(value: float) -> str:
@@ -52,3 +54,40 @@ def check_passes(context: AnalyteContext, reading: Reading) -> bool:
 
 def result_of(context: AnalyteContext, reading: Reading) -> Result | None:
     return context.results.get(reading.seq)
+
+
+def recovery_finding(
+    rule_id: str,
+    context: AnalyteContext,
+    reading: Reading,
+    recovery: float | None,
+    limits: Range,
+    detail: str = "",
+    missing: str = "cannot be quantitated",
+) -> Finding | None:
+    """The failing finding of a QC sample whose recovery is missing or outside ``limits``."""
+    if recovery is not None and within(recovery, limits):
+        return None
+    found = missing if recovery is None else f"recovered {recovery:.1f} %"
+    return Finding(
+        rule_id,
+        Severity.FAIL,
+        f"{reading.sample_id} {context.analyte} {found}{detail}, limit {span(limits)}",
+        analyte=context.analyte,
+        sample_id=reading.sample_id,
+        seq=reading.seq,
+        value=recovery,
+        limit=limits,
+        flag=Flag.QC_FAILED,
+        affected=(reading.seq,),
+    )
+
+
+def quantitated_field_results(context: AnalyteContext) -> Iterator[tuple[Reading, float]]:
+    """Each field result read off the curve, with its concentration in the measured solution."""
+    for reading in context.readings:
+        if reading.kind not in REPORTABLE_KINDS:
+            continue
+        result = context.results.get(reading.seq)
+        if result is not None and result.measured is not None:
+            yield reading, result.measured

@@ -4,11 +4,21 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from rules.acceptance.common import number, recovery_pct, result_of, span, within
-from rules.model import REPORTABLE_KINDS, Kind, Reading
+from rules.acceptance.common import (
+    number,
+    quantitated_field_results,
+    recovery_finding,
+    recovery_pct,
+    result_of,
+    span,
+    within,
+)
+from rules.model import Kind, Reading
 from rules.registry import AnalyteContext, rule
 from rules.verdict import Finding, Flag, Result, Severity
 
+#: Kinds whose unquantifiable results another rule already reports.
+_OWN_RULE_KINDS = frozenset({Kind.ICV, Kind.CCV, Kind.ADDITION})
 #: Extra dilutions offered for an over-range sample, in the usual 1-2-5 steps.
 _DILUTION_STEPS = (2, 5, 10, 20, 50, 100, 200, 500, 1000, 2000, 5000, 10000)
 #: An over-range sample is diluted to land at or below this share of the top standard,
@@ -45,12 +55,9 @@ def range_over(context: AnalyteContext) -> Iterator[Finding]:
     if calibration is None or calibration.range_high is None:
         return
     top = calibration.range_high
-    for reading in context.readings:
-        result = result_of(context, reading)
-        if reading.kind not in REPORTABLE_KINDS or result is None or result.measured is None:
-            continue
-        if result.measured > top:
-            dilution = suggested_dilution(result.measured, top, reading.dilution)
+    for reading, measured in quantitated_field_results(context):
+        if measured > top:
+            dilution = suggested_dilution(measured, top, reading.dilution)
             advice = (
                 f"dilute to {number(dilution)}× in total and re-run"
                 if dilution
@@ -59,17 +66,50 @@ def range_over(context: AnalyteContext) -> Iterator[Finding]:
             yield Finding(
                 "range.over",
                 Severity.FAIL,
-                f"{reading.sample_id} {context.analyte} at {number(result.measured)}"
+                f"{reading.sample_id} {context.analyte} at {number(measured)}"
                 f"{context.unit} in the measured solution is over range (top standard "
                 f"{number(top)}{context.unit}): {advice}",
                 analyte=context.analyte,
                 sample_id=reading.sample_id,
                 seq=reading.seq,
-                value=result.measured,
+                value=measured,
                 limit=(None, top),
                 flag=Flag.OVER_RANGE,
                 affected=(reading.seq,),
             )
+
+
+@rule("range.on_curve", "Every response has a concentration on the calibrated curve")
+def range_on_curve(context: AnalyteContext) -> Iterator[Finding]:
+    """A response that no concentration on the fitted curve gives cannot be reported.
+
+    Why: a quadratic that bends over has a highest response; a reading above
+    it has no concentration on the calibrated branch, which is an over-range
+    result in all but name (common practice). No settings.
+
+    Fails: S-04 Na response 2.1e6 on a curve whose maximum is 1.9e6. Passes:
+    S-04 Na response 1.2e6, read at 31 mg/L.
+    """
+    calibration = context.calibration
+    if calibration is None or calibration.fit is None:
+        return
+    for reading in context.readings:
+        result = result_of(context, reading)
+        # Check standards are judged by check.recovery, addition series by addition.fit.
+        if result is None or result.measured is not None or reading.kind in _OWN_RULE_KINDS:
+            continue
+        yield Finding(
+            "range.on_curve",
+            Severity.FAIL,
+            f"{reading.sample_id} {context.analyte}: no concentration on the calibrated curve "
+            f"gives response {number(result.signal or 0.0)}: dilute and re-run",
+            analyte=context.analyte,
+            sample_id=reading.sample_id,
+            seq=reading.seq,
+            value=result.signal,
+            flag=Flag.NOT_QUANTIFIABLE,
+            affected=(reading.seq,),
+        )
 
 
 @rule("range.under", "Results below the lowest standard are marked as estimates")
@@ -88,21 +128,18 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
     if calibration is None or calibration.range_low is None:
         return
     low = calibration.range_low
-    for reading in context.readings:
-        result = result_of(context, reading)
-        if reading.kind not in REPORTABLE_KINDS or result is None or result.measured is None:
-            continue
-        if result.measured < low:
+    for reading, measured in quantitated_field_results(context):
+        if measured < low:
             yield Finding(
                 "range.under",
                 Severity.WARN,
-                f"{reading.sample_id} {context.analyte} at {number(result.measured)}"
+                f"{reading.sample_id} {context.analyte} at {number(measured)}"
                 f"{context.unit} is below the lowest standard ({number(low)}{context.unit}): "
                 "estimated value",
                 analyte=context.analyte,
                 sample_id=reading.sample_id,
                 seq=reading.seq,
-                value=result.measured,
+                value=measured,
                 limit=(low, None),
                 flag=Flag.BELOW_RANGE,
                 affected=(reading.seq,),
@@ -280,19 +317,9 @@ def spike_recovery(context: AnalyteContext) -> Iterator[Finding]:
             )
             continue
         recovery = recovery_pct(spiked.concentration - parent.concentration, added)
-        if recovery is not None and within(recovery, limits):
-            continue
-        found = "cannot be computed (nothing added)" if recovery is None else f"{recovery:.1f} %"
-        yield Finding(
-            "spike.recovery",
-            Severity.FAIL,
-            f"{reading.sample_id} {context.analyte} recovered {found} of {number(added)}"
-            f"{context.unit} added to {reading.parent}, limit {span(limits)}",
-            analyte=context.analyte,
-            sample_id=reading.sample_id,
-            seq=reading.seq,
-            value=recovery,
-            limit=limits,
-            flag=Flag.QC_FAILED,
-            affected=(reading.seq,),
+        detail = f" of {number(added)}{context.unit} added to {reading.parent}"
+        finding = recovery_finding(
+            "spike.recovery", context, reading, recovery, limits, detail, "cannot be judged"
         )
+        if finding:
+            yield finding
