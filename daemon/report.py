@@ -110,6 +110,21 @@ def _calibrations(document: dict[str, Any]) -> list[str]:
             )
         )
     lines.extend(_table(rows))
+    lines += _heading("Calibration standards read back")
+    standards = [("analyte", "standard", "nominal", "read back", "error %")]
+    for analyte, c in calibrations.items():
+        for point in c.get("standards", []):
+            error = point.get("error_pct")
+            standards.append(
+                (
+                    analyte,
+                    point["sample_id"],
+                    _number(point["nominal"]),
+                    _number(point.get("back_calculated")),
+                    "-" if error is None else f"{error:+.1f}",
+                )
+            )
+    lines.extend(_table(standards))
     return lines
 
 

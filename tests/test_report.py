@@ -1,0 +1,46 @@
+"""The human-readable report: what an analyst reads first."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from daemon.config import load_config
+from daemon.pipeline import judge_file
+from daemon.report import render
+
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+
+
+def _report(name: str, *, full: bool = True) -> str:
+    return render(judge_file(FIXTURES / name, load_config(None)).document, full=full)
+
+
+def test_report_carries_the_caution() -> None:
+    """Every report ends with the caution that screening does not replace review."""
+    assert "does not replace, the analyst's review" in _report("bwl-metals-pass.csv")
+
+
+def test_error_report_gives_the_reason_and_no_tables() -> None:
+    """A report on a broken file says why it could not be evaluated and shows no results."""
+    text = _report("bwl-bad-missing-nominal.csv")
+    assert "ERROR: line 15, column 'nominal'" in text
+    assert "Results (" not in text
+
+
+def test_full_report_shows_each_standard_read_back() -> None:
+    """The full report lists every calibration standard with its back-calculated value."""
+    text = _report("bwl-metals-pass.csv")
+    assert "Calibration standards read back" in text
+    assert text.count("CAL-1 ") >= 4  # one line per analyte
+
+
+def test_summary_leaves_out_the_tables() -> None:
+    """The terminal summary has the re-run list and findings but no result table."""
+    text = _report("bwl-metals-fail.csv", full=False)
+    assert "Samples to re-run" in text and "Findings by analyte" in text
+    assert "Results (" not in text
+
+
+def test_failed_ccv_is_reported_with_value_and_limit() -> None:
+    """The failing CCV is reported in plain words with its recovery and its limit."""
+    assert "CCV-2 Zn recovered 82.6 %, limit 90–110 %" in _report("bwl-metals-fail.csv")
