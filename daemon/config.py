@@ -14,6 +14,16 @@ from typing import Any
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
+from daemon.formats import (
+    ColumnByPattern,
+    ExportFormat,
+    FooterSection,
+    HeaderSection,
+    KindPattern,
+    KindSection,
+    NominalSection,
+    WideSection,
+)
 from rules.criteria import AnalyteCriteria, Criteria
 from rules.errors import ConfigError
 
@@ -24,6 +34,10 @@ class AppConfig(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
     criteria: Criteria = Field(default_factory=Criteria)
+    format: ExportFormat | None = Field(
+        default=None,
+        description="the layout of the instrument's export; absent: calwarden's native CSV",
+    )
 
 
 class _StrictLoader(yaml.SafeLoader):
@@ -60,15 +74,35 @@ def parse_yaml(text: str, source: str) -> Any:
 
 def _known_keys() -> list[str]:
     """Every key the configuration knows at any level, for did-you-mean hints."""
-    models: tuple[type[BaseModel], ...] = (AppConfig, Criteria, AnalyteCriteria)
+    models: tuple[type[BaseModel], ...] = (
+        AppConfig,
+        Criteria,
+        AnalyteCriteria,
+        ExportFormat,
+        HeaderSection,
+        FooterSection,
+        KindSection,
+        KindPattern,
+        NominalSection,
+        WideSection,
+        ColumnByPattern,
+    )
     return [name for model in models for name in model.model_fields]
+
+
+def dotted_path(location: tuple[Any, ...]) -> str:
+    """``('inboxes', 1, 'format', 'delimiter')`` as ``inboxes[1].format.delimiter``."""
+    text = ""
+    for part in location:
+        text += f"[{part}]" if isinstance(part, int) else (f".{part}" if text else str(part))
+    return text
 
 
 def describe_validation_error(error: ValidationError) -> str:
     """The first problem of a pydantic error as ``dotted.path: what is wrong (hint)``."""
     problem = error.errors()[0]
     location = tuple(problem["loc"])
-    where = ".".join(str(part) for part in location)
+    where = dotted_path(location)
     if problem["type"] == "extra_forbidden":
         key = str(location[-1])
         close = difflib.get_close_matches(key, _known_keys(), n=1)
