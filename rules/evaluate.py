@@ -8,6 +8,7 @@ out, nothing read or written on the way.
 from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from statistics import fmean
 
 from rules.acceptance.samples import suggested_dilution
@@ -70,11 +71,11 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
     for analyte, rows in by_analyte.items():
         rows.sort(key=lambda r: r.seq)
         judged = _judge_analyte(analyte, tuple(rows), criteria.for_analyte(analyte), rules)
-        findings.extend(judged[0])
-        if judged[1] is not None:
-            calibrations.append(judged[1])
-        results.extend(judged[2])
-        additions.extend(judged[3])
+        findings.extend(judged.findings)
+        if judged.calibration is not None:
+            calibrations.append(judged.calibration)
+        results.extend(judged.results)
+        additions.extend(judged.additions)
 
     # Stable sort: within one seq the analytes keep the run's order.
     results.sort(key=_seq_of)
@@ -94,9 +95,17 @@ def _seq_of(result: Result) -> int:
     return result.seq if result.seq is not None else -1
 
 
+@dataclass(frozen=True, slots=True)
+class _AnalyteJudgement:
+    findings: list[Finding]
+    calibration: Calibration | None
+    results: list[Result]
+    additions: list[AdditionSeries]
+
+
 def _judge_analyte(
     analyte: str, rows: tuple[Reading, ...], criteria: AnalyteCriteria, rules: Sequence[Rule]
-) -> tuple[list[Finding], Calibration | None, list[Result], list[AdditionSeries]]:
+) -> _AnalyteJudgement:
     blank_signal = _blank_signal(rows, criteria)
     unit = next((r.unit for r in rows if r.unit), None)
     calibration = _calibrate(analyte, rows, criteria, blank_signal, unit)
@@ -129,7 +138,7 @@ def _judge_analyte(
         if marks:
             result = _with_flags(result, marks, calibration.range_high if calibration else None)
         results.append(result)
-    return findings, calibration, results, list(series.values())
+    return _AnalyteJudgement(findings, calibration, results, list(series.values()))
 
 
 def _with_flags(result: Result, marks: Iterable[Flag], top: float | None) -> Result:

@@ -10,7 +10,6 @@ from rules.model import Kind
 from rules.registry import AnalyteContext, rule
 from rules.verdict import Finding, Flag, Severity
 
-RULE_PREFIX = "calibration."
 _NO_CURVE_NEEDED = frozenset({Kind.BLANK, Kind.CAL, Kind.ADDITION})
 
 
