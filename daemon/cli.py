@@ -42,6 +42,25 @@ def _parser() -> argparse.ArgumentParser:
         help="also write <stem>.verdict.json, <stem>.flagged.csv and <stem>.report.txt here",
     )
 
+    inspect = commands.add_parser(
+        "inspect",
+        help="show how a file is read: detected layout, mapped columns, first rows, problems",
+        description="Show how calwarden reads a file, for setting up a new instrument's "
+        "export: exit 0 when every row is read, 2 when some would be rejected.",
+    )
+    inspect.add_argument("file", type=Path, help="an export of the instrument")
+    inspect.add_argument("--config", type=Path, help="YAML configuration with a format section")
+
+    config = commands.add_parser("config", help="check a configuration or print its schema")
+    config_commands = config.add_subparsers(dest="config_command", metavar="ACTION")
+    config_check = config_commands.add_parser(
+        "check", help="validate a configuration file (exit 0 valid, 2 not)"
+    )
+    config_check.add_argument("file", type=Path, help="the YAML configuration")
+    config_commands.add_parser(
+        "schema", help="print the configuration's JSON Schema (for editors' YAML completion)"
+    )
+
     listing = commands.add_parser("rules", help="list every acceptance rule with its defaults")
     listing.add_argument("--config", type=Path, help="show the limits of this configuration")
     listing.add_argument("rule", nargs="?", help="explain one rule in full")
@@ -94,6 +113,52 @@ def _check_failed(args: argparse.Namespace, message: str) -> int:
     return EXIT_ERROR
 
 
+def _inspect(args: argparse.Namespace) -> int:
+    from daemon.config import load_config
+    from daemon.inspection import inspect_file, render_inspection
+    from rules.errors import ConfigError
+
+    try:
+        config = load_config(args.config)
+    except ConfigError as error:
+        print(f"calwarden: configuration error: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    inspection = inspect_file(args.file, config)
+    print(render_inspection(inspection), end="")
+    return EXIT_ERROR if inspection.fatal or inspection.problems else EXIT_PASS
+
+
+def _config(args: argparse.Namespace) -> int:
+    from daemon.config import AppConfig, load_config
+    from rules.errors import ConfigError
+
+    if args.config_command == "schema":
+        schema = AppConfig.model_json_schema()
+        schema = {"$schema": "https://json-schema.org/draft/2020-12/schema", **schema}
+        schema["title"] = "calwarden configuration"
+        print(json.dumps(schema, indent=2, ensure_ascii=False))
+        return EXIT_PASS
+    if args.config_command != "check":
+        print("calwarden: say `config check FILE` or `config schema`", file=sys.stderr)
+        return EXIT_ERROR
+    try:
+        config = load_config(args.file)
+    except ConfigError as error:
+        print(f"calwarden: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    from rules.evaluate import active_rules
+
+    try:
+        active_rules(config.criteria)
+    except ConfigError as error:
+        print(f"calwarden: {args.file}: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    overrides = len(config.criteria.analytes)
+    layout = "an export format" if config.format else "the native CSV format"
+    print(f"{args.file}: valid ({overrides} analyte override(s), reads {layout})")
+    return EXIT_PASS
+
+
 def _rules(args: argparse.Namespace) -> int:
     from daemon.config import load_config
     from rules.errors import ConfigError
@@ -135,6 +200,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _check(args)
     if args.command == "rules":
         return _rules(args)
+    if args.command == "inspect":
+        return _inspect(args)
+    if args.command == "config":
+        return _config(args)
     _parser().print_help()
     return EXIT_ERROR
 

@@ -52,25 +52,23 @@ def _cell(value: float | None) -> str:
 
 
 def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
-    """The input's rows and columns, each row followed by its concentration and flags."""
-    by_line: dict[int, Result] = {r.line: r for r in verdict.results if r.line is not None}
-    addition_rows: dict[tuple[str, int], Result] = {}
+    """The input's rows and columns, each row followed by its concentration and flags.
+
+    Rows are matched to results by (analyte, seq), not by line: in a wide export
+    every analyte of an injection comes from the same line.
+    """
+    results: dict[tuple[str, int], Result] = {}
+    for result in verdict.results:
+        if result.kind is not Kind.ADDITION and result.seq is not None:
+            results[(result.analyte, result.seq)] = result
+    by_seq_and_analyte = {(r.analyte, r.seq): r for r in verdict.results if r.kind is Kind.ADDITION}
     for series in verdict.additions:
-        result = next(
-            (
-                r
-                for r in verdict.results
-                if r.kind is Kind.ADDITION
-                and r.seq == series.seqs[0]
-                and r.analyte == series.analyte
-            ),
-            None,
-        )
-        if result is not None:
+        addition = by_seq_and_analyte.get((series.analyte, series.seqs[0]))
+        if addition is not None:
             for seq in series.seqs:
-                addition_rows[(series.analyte, seq)] = result
-    back_calculated: dict[int, float | None] = {
-        s.line: s.back_calculated for c in verdict.calibrations for s in c.standards
+                results[(series.analyte, seq)] = addition
+    back_calculated = {
+        (c.analyte, s.seq): s.back_calculated for c in verdict.calibrations for s in c.standards
     }
     header = list(table.header)
     added = [name if name not in header else f"{name}_calwarden" for name in ADDED_COLUMNS]
@@ -78,16 +76,13 @@ def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow([*header, *added])
     keys = [header_key(name) for name in header]
-    seq_column = keys.index("seq") if "seq" in keys else None
-    analyte_column = keys.index("analyte") if "analyte" in keys else None
+    seq_column, analyte_column = keys.index("seq"), keys.index("analyte")
     for row in table.rows:
-        result = by_line.get(row.line)
-        if result is None and seq_column is not None and analyte_column is not None:
-            try:
-                key = (row.fields[analyte_column].strip(), int(row.fields[seq_column]))
-                result = addition_rows.get(key)
-            except (ValueError, IndexError):
-                result = None
+        try:
+            key = (row.fields[analyte_column].strip(), int(row.fields[seq_column]))
+        except (ValueError, IndexError):
+            key = ("", -1)  # cannot happen for a table that was judged; write no result
+        result = results.get(key)
         if result is not None:
             extra = [
                 _cell(result.concentration),
@@ -95,8 +90,8 @@ def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
                 result.unit or "",
                 " ".join(flag.value for flag in result.flags),
             ]
-        elif row.line in back_calculated:
-            extra = [_cell(back_calculated[row.line]), "", "", ""]
+        elif key in back_calculated:
+            extra = [_cell(back_calculated[key]), "", "", ""]
         else:
             extra = ["", "", "", ""]
         writer.writerow([*row.fields, *extra])

@@ -56,7 +56,12 @@ def judge_file(path: Path, config: AppConfig) -> Judgement:
     """
     criteria_sha256 = config.criteria.digest()
     try:
-        parsed = read_native(path)
+        if config.format is None:
+            parsed = read_native(path)
+        else:
+            from daemon.layout import read_export  # only configurations with a layout need it
+
+            parsed, _ = read_export(path, config.format)
     except InputError as error:
         return Judgement(error_document(path, str(error), criteria_sha256), None, None)
     verdict = evaluate(parsed.run, config.criteria)

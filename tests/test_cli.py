@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import csv
 import json
 import subprocess
 import sys
@@ -122,3 +123,52 @@ def test_installed_command_runs_without_traceback(tmp_path: Path) -> None:
     assert result.returncode == 2
     assert "Traceback" not in result.stdout + result.stderr
     assert "binary" in result.stdout
+
+
+def test_config_check_accepts_every_shipped_configuration(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """`calwarden config check` exits 0 on each configuration in config/."""
+    for path in sorted((FIXTURES.parent / "config").glob("*.yaml")):
+        assert main(["config", "check", str(path)]) == 0, capsys.readouterr().err
+
+
+def test_config_check_refuses_a_bad_key(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """`calwarden config check` exits 2 and names the bad key with a hint."""
+    config = tmp_path / "lab.yaml"
+    config.write_text("format:\n  delimeter: ';'\n", encoding="utf-8")
+    assert main(["config", "check", str(config)]) == 2
+    assert "format.delimeter: unknown key (did you mean delimiter?)" in capsys.readouterr().err
+
+
+def test_config_schema_is_json_schema_of_the_whole_configuration(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """`calwarden config schema` prints a JSON Schema that forbids unknown keys."""
+    assert main(["config", "schema"]) == 0
+    schema = json.loads(capsys.readouterr().out)
+    assert schema["additionalProperties"] is False
+    assert {"criteria", "format"} <= set(schema["properties"])
+
+
+def test_flagged_copy_of_a_wide_export_keeps_each_analyte_apart(tmp_path: Path) -> None:
+    """In a wide export's flagged copy each analyte's row carries that analyte's own result."""
+    export = FIXTURES / "exports" / "bwl-lcms-herbicides.csv"
+    config = FIXTURES.parent / "config" / "export-lcms-wide.yaml"
+    main(["check", str(export), "--config", str(config), "--out", str(tmp_path)])
+    document = json.loads((tmp_path / "bwl-lcms-herbicides.verdict.json").read_text("utf-8"))
+    expected = {
+        (r["seq"], r["analyte"]): repr(r["concentration"])
+        for r in document["results"]
+        if r["concentration"] is not None
+    }
+    flagged = (tmp_path / "bwl-lcms-herbicides.flagged.csv").read_text("utf-8").splitlines()
+    header = flagged[0].split(",")
+    seq, kind, analyte, concentration = (
+        header.index(n) for n in ("seq", "kind", "analyte", "concentration")
+    )
+    found = {}
+    for line in csv.reader(flagged[1:]):
+        if line[concentration] and line[kind] != "cal":  # standards carry their read-back value
+            found[(int(line[seq]), line[analyte])] = line[concentration]
+    assert found == expected
