@@ -13,6 +13,10 @@ import json
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from daemon.config import AppConfig
 
 EXIT_PASS, EXIT_FAIL, EXIT_ERROR = 0, 1, 2
 
@@ -113,15 +117,23 @@ def _check_failed(args: argparse.Namespace, message: str) -> int:
     return EXIT_ERROR
 
 
-def _inspect(args: argparse.Namespace) -> int:
+def _load_config_or_say_why(path: Path | None) -> AppConfig | None:
+    """The configuration, or ``None`` after printing why it is invalid."""
     from daemon.config import load_config
-    from daemon.inspection import inspect_file, render_inspection
     from rules.errors import ConfigError
 
     try:
-        config = load_config(args.config)
+        return load_config(path)
     except ConfigError as error:
         print(f"calwarden: configuration error: {error}", file=sys.stderr)
+        return None
+
+
+def _inspect(args: argparse.Namespace) -> int:
+    from daemon.inspection import inspect_file, render_inspection
+
+    config = _load_config_or_say_why(args.config)
+    if config is None:
         return EXIT_ERROR
     inspection = inspect_file(args.file, config)
     print(render_inspection(inspection), end="")
@@ -129,8 +141,7 @@ def _inspect(args: argparse.Namespace) -> int:
 
 
 def _config(args: argparse.Namespace) -> int:
-    from daemon.config import AppConfig, load_config
-    from rules.errors import ConfigError
+    from daemon.config import AppConfig
 
     if args.config_command == "schema":
         schema = AppConfig.model_json_schema()
@@ -141,17 +152,8 @@ def _config(args: argparse.Namespace) -> int:
     if args.config_command != "check":
         print("calwarden: say `config check FILE` or `config schema`", file=sys.stderr)
         return EXIT_ERROR
-    try:
-        config = load_config(args.file)
-    except ConfigError as error:
-        print(f"calwarden: {error}", file=sys.stderr)
-        return EXIT_ERROR
-    from rules.evaluate import active_rules
-
-    try:
-        active_rules(config.criteria)
-    except ConfigError as error:
-        print(f"calwarden: {args.file}: {error}", file=sys.stderr)
+    config = _load_config_or_say_why(args.file)
+    if config is None:
         return EXIT_ERROR
     overrides = len(config.criteria.analytes)
     layout = "an export format" if config.format else "the native CSV format"
@@ -160,14 +162,10 @@ def _config(args: argparse.Namespace) -> int:
 
 
 def _rules(args: argparse.Namespace) -> int:
-    from daemon.config import load_config
-    from rules.errors import ConfigError
     from rules.registry import all_rules
 
-    try:
-        config = load_config(args.config)
-    except ConfigError as error:
-        print(f"calwarden: configuration error: {error}", file=sys.stderr)
+    config = _load_config_or_say_why(args.config)
+    if config is None:
         return EXIT_ERROR
     rules = all_rules()
     if args.rule:

@@ -26,6 +26,7 @@ from daemon.formats import (
 )
 from rules.criteria import AnalyteCriteria, Criteria
 from rules.errors import ConfigError
+from rules.evaluate import active_rules
 
 
 class AppConfig(BaseModel):
@@ -123,9 +124,14 @@ def build_config(data: Any, source: str) -> AppConfig:
             f"{source}: the configuration must be a mapping of keys, not {type(data).__name__}"
         )
     try:
-        return AppConfig.model_validate(data)
+        config = AppConfig.model_validate(data)
     except ValidationError as error:
         raise ConfigError(f"{source}: {describe_validation_error(error)}") from None
+    try:
+        active_rules(config.criteria)  # a switched-off rule id must exist
+    except ConfigError as error:
+        raise ConfigError(f"{source}: {error}") from None
+    return config
 
 
 def load_config(path: Path | None) -> AppConfig:

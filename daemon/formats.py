@@ -35,7 +35,7 @@ def _valid_regex(pattern: str) -> str:
 
 
 class ColumnByPattern(_Section):
-    """A column found by a regular expression on the header name (case-insensitive)."""
+    """A column found by a regular expression searched in the header name, ignoring case."""
 
     regex: str
 
@@ -62,11 +62,13 @@ class FooterSection(_Section):
 
     stop_at: str | None = Field(
         default=None,
-        description="regex: the first line whose first cell matches it, and every line "
-        "after it, are not data",
+        description="regex (searched, ignoring case): the first row whose first cell "
+        "matches it, and every line after it, are not data",
     )
     skip_matching: tuple[str, ...] = Field(
-        default=(), description="regexes: rows whose first cell matches one are not data"
+        default=(),
+        description="regexes (searched, ignoring case): rows whose first cell matches one "
+        "are not data",
     )
 
     @field_validator("stop_at")
@@ -81,7 +83,7 @@ class FooterSection(_Section):
 
 
 class KindPattern(_Section):
-    """Sample ids matching ``match`` (a regex, case-insensitive) are of kind ``kind``."""
+    """Sample ids in which the regex ``match`` is found (ignoring case) are of kind ``kind``."""
 
     match: str
     kind: Kind
@@ -134,7 +136,8 @@ class WideSection(_Section):
     """One row per injection, one response column per analyte."""
 
     response: str = Field(
-        description="regex on the header: its first group is the analyte, e.g. '(.+) Area'"
+        description="regex searched in each header name, ignoring case: its first group is "
+        "the analyte, e.g. '(.+) Area$'; columns mapped under columns are never analytes"
     )
     nominal: str | None = Field(
         default=None, description="regex for per-analyte nominal columns, e.g. '(.+) Expected'"
@@ -212,6 +215,8 @@ class ExportFormat(_Section):
             raise ValueError("thousands and decimal separators must differ")
         if self.delimiter == self.decimal:
             raise ValueError("the delimiter and the decimal separator must differ")
+        if self.order == "rows" and "seq" in self.columns:
+            raise ValueError("order: rows numbers the injections itself; do not map columns.seq")
         if self.wide is not None and ("analyte" in self.columns or "response" in self.columns):
             raise ValueError(
                 "a wide layout takes analyte and response from wide.response; "

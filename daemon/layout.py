@@ -46,7 +46,6 @@ import csv
 import hashlib
 import io
 import re
-import stat
 import warnings
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
@@ -72,6 +71,7 @@ from daemon.reader import (
     _check_header,
     header_key,
     normalise,
+    read_file_bytes,
 )
 from rules.errors import InputError
 from rules.model import NEEDS_NOMINAL
@@ -976,19 +976,7 @@ def read_export(
     hash is of exactly the bytes parsed. The run is named after the ``run``
     column, else ``fmt.run``, else the file's stem.
     """
-    try:
-        info = path.stat()
-        if not stat.S_ISREG(info.st_mode):
-            kind = "a directory" if stat.S_ISDIR(info.st_mode) else "not a regular file"
-            raise InputError(f"cannot read {path}: it is {kind}")
-        if info.st_size > max_bytes:
-            raise InputError(
-                f"the file is too large to be a run: {info.st_size} bytes, the limit is {max_bytes}"
-            )
-        with path.open("rb") as handle:
-            data = handle.read(max_bytes + 1)  # a file growing since stat still hits the limit
-    except OSError as exc:
-        raise InputError(f"cannot read {path}: {exc.strerror or exc}") from None
+    data = read_file_bytes(path, max_bytes)
     table, detected = export_table(
         data, fmt, source=str(path), suffix=path.suffix, max_bytes=max_bytes
     )

@@ -407,12 +407,10 @@ def _check_cells(cells: tuple[str, ...], line: int) -> None:
 # --------------------------------------------------------------------------- both
 
 
-def read_native(path: Path, *, max_bytes: int = MAX_FILE_BYTES) -> ParsedFile:
-    """Read a native file from disk: hash its bytes, split it and build its run.
+def read_file_bytes(path: Path, max_bytes: int = MAX_FILE_BYTES) -> bytes:
+    """A run file's bytes, read once; refuses what is not a regular file or is too large.
 
-    The size is checked before anything is read, and the file is read once; the
-    hash is of exactly the bytes parsed. The run is named after the ``run``
-    column when the file has one, else after the file's stem.
+    The size is checked before anything is read, so a huge file is never loaded.
     """
     try:
         info = path.stat()
@@ -424,9 +422,19 @@ def read_native(path: Path, *, max_bytes: int = MAX_FILE_BYTES) -> ParsedFile:
                 f"the file is too large to be a run: {info.st_size} bytes, the limit is {max_bytes}"
             )
         with path.open("rb") as handle:
-            data = handle.read(max_bytes + 1)  # a file growing since stat still hits the limit
+            return handle.read(max_bytes + 1)  # a file growing since stat still hits the limit
     except OSError as exc:
         raise InputError(f"cannot read {path}: {exc.strerror or exc}") from None
+
+
+def read_native(path: Path, *, max_bytes: int = MAX_FILE_BYTES) -> ParsedFile:
+    """Read a native file from disk: hash its bytes, split it and build its run.
+
+    The size is checked before anything is read, and the file is read once; the
+    hash is of exactly the bytes parsed. The run is named after the ``run``
+    column when the file has one, else after the file's stem.
+    """
+    data = read_file_bytes(path, max_bytes)
     table = decode_table(data, source=str(path), max_bytes=max_bytes)
     run = normalise(table, run_name=path.stem)
     return ParsedFile(path, hashlib.sha256(data).hexdigest(), table, run)

@@ -83,3 +83,11 @@ def test_yaml_syntax_error_names_the_line(tmp_path: Path) -> None:
     path.write_text("criteria:\n  defaults: [unclosed\n", encoding="utf-8")
     with pytest.raises(ConfigError, match="not valid YAML"):
         load_config(path)
+
+
+def test_loading_a_configuration_checks_disabled_rule_ids(tmp_path: Path) -> None:
+    """A configuration switching off an unknown rule is refused when it is loaded."""
+    path = tmp_path / "lab.yaml"
+    path.write_text("criteria:\n  disabled_rules: [range.undr]\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"lab\.yaml: criteria\.disabled_rules: unknown rule id"):
+        load_config(path)
