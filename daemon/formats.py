@@ -190,6 +190,11 @@ class ExportFormat(_Section):
     kinds: KindSection = KindSection()
     nominals: NominalSection = NominalSection()
     wide: WideSection | None = None
+    analyte_names: dict[str, str] = Field(
+        default_factory=dict,
+        description="the export's analyte names (matched ignoring case and surrounding "
+        "spaces) to the names calwarden reports and criteria use, e.g. '66Zn': Zn",
+    )
     unit: str | None = Field(default=None, description="unit of every row without its own")
     timestamp_formats: tuple[str, ...] = Field(
         default=(),

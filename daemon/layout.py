@@ -786,6 +786,7 @@ class _Converter:
             else None
         )
         self.shared_istd = "istd_response" in index
+        self.names = {header_key(name): new for name, new in fmt.analyte_names.items()}
         self.seq = 0
         self.previous: str | None = None
 
@@ -812,9 +813,15 @@ class _Converter:
                 self.seq += 1
                 self.previous = sample_id
             out[at["seq"]] = str(self.seq)
+        if self.names:
+            out[at["analyte"]] = self._analyte(out[at["analyte"]])
         if self.nominal is not None:
             self._fill_nominal(out, fields, out[at["analyte"]], sample_id)
         return [tuple(out)]
+
+    def _analyte(self, name: str) -> str:
+        """The name calwarden reports for an export's analyte name."""
+        return self.names.get(header_key(name), name)
 
     def _wide(self, line: int, fields: Sequence[str], shared: list[str]) -> list[tuple[str, ...]]:
         at = self.at
@@ -827,7 +834,8 @@ class _Converter:
             if not response.strip():
                 continue  # the analyte was not measured in this injection
             out = shared.copy()
-            out[at["analyte"]] = analyte.name
+            name = self._analyte(analyte.name)
+            out[at["analyte"]] = name
             out[at["response"]] = self._number(response, line, "response")
             if analyte.nominal is not None:
                 out[at["nominal"]] = self._number(fields[analyte.nominal], line, "nominal")
@@ -836,7 +844,7 @@ class _Converter:
                 if cell.strip() or not self.shared_istd:
                     out[at["istd_response"]] = cell
             if self.nominal is not None:
-                self._fill_nominal(out, fields, analyte.name, sample_id)
+                self._fill_nominal(out, fields, name, sample_id)
             rows.append(tuple(out))
         if rows and self.order_rows:
             self.seq += 1

@@ -615,3 +615,25 @@ def test_arbitrary_bytes_fail_only_as_input_errors(data: bytes, which: int) -> N
         normalise(table)
     except InputError:
         pass
+
+
+# --------------------------------------------------------------------------- analyte names
+
+
+def test_analyte_names_rename_a_long_export() -> None:
+    """analyte_names turns the export's isotope-style names into the lab's names."""
+    text = "seq,sample_id,kind,analyte,response,nominal\n1,CAL-1,cal, 66zn ,1000,1\n"
+    (reading,) = readings(text, layout(analyte_names={"66Zn": "Zn"}))
+    assert reading.analyte == "Zn"
+
+
+def test_analyte_names_rename_wide_columns() -> None:
+    """analyte_names also renames the analytes a wide layout finds in its headers."""
+    text = "sample_id,66Zn Area,63Cu Area\nS-1,100,200\n"
+    fmt = layout(
+        order="rows",
+        kinds={"default": "sample"},
+        wide={"response": "^(.+) Area$"},
+        analyte_names={"66Zn": "Zn"},
+    )
+    assert [r.analyte for r in readings(text, fmt)] == ["Zn", "63Cu"]
