@@ -8,7 +8,7 @@ out, nothing read or written on the way.
 from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from statistics import fmean
 
 from rules.acceptance.samples import suggested_dilution
@@ -146,21 +146,7 @@ def _with_flags(result: Result, marks: Iterable[Flag], top: float | None) -> Res
     suggested = None
     if Flag.OVER_RANGE in unique and result.measured is not None and top is not None:
         suggested = suggested_dilution(result.measured, top, result.dilution)
-    return Result(
-        sample_id=result.sample_id,
-        seq=result.seq,
-        kind=result.kind,
-        analyte=result.analyte,
-        line=result.line,
-        signal=result.signal,
-        measured=result.measured,
-        concentration=result.concentration,
-        uncertainty=result.uncertainty,
-        dilution=result.dilution,
-        unit=result.unit,
-        flags=unique,
-        suggested_dilution=suggested,
-    )
+    return replace(result, flags=unique, suggested_dilution=suggested)
 
 
 def _blank_signal(rows: Sequence[Reading], criteria: AnalyteCriteria) -> float | None:
