@@ -61,6 +61,7 @@ class AnalyteCriteria(_Frozen):
     duplicate_min_multiple: float = Field(default=5.0, ge=0)
     spike_recovery_pct: Range = (75.0, 125.0)
     spike_max_native_ratio: float = Field(default=4.0, gt=0)  # native > 4× spike: not judged
+    spike_max_rpd_pct: float = Field(default=20.0, gt=0)  # matrix spike vs its duplicate
     lcs_recovery_pct: Range = (80.0, 120.0)
     # --- standard addition: common practice.
     addition_min_points: int = Field(default=3, ge=2)

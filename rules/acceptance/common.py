@@ -35,6 +35,12 @@ def recovery_pct(found: float | None, expected: float | None) -> float | None:
     return 100.0 * found / expected
 
 
+def rpd_pct(first: float, second: float) -> float | None:
+    """|a − b| over the mean of a and b, in percent; None when that mean is 0."""
+    mean = (first + second) / 2
+    return None if mean == 0 else 100.0 * abs(first - second) / abs(mean)
+
+
 def check_recovery(context: AnalyteContext, reading: Reading) -> float | None:
     """Recovery of an ICV or CCV, in percent (``None``: not quantifiable)."""
     result = context.results.get(reading.seq)

@@ -10,6 +10,7 @@ from rules.acceptance.common import (
     recovery_finding,
     recovery_pct,
     result_of,
+    rpd_pct,
     span,
     within,
 )
@@ -261,9 +262,8 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
                 f"below {number(criteria.duplicate_min_multiple)}× the lowest standard",
             )
             continue
-        mean = (duplicate.concentration + parent.concentration) / 2
-        rpd = 100.0 * abs(duplicate.concentration - parent.concentration) / mean
-        if rpd > criteria.duplicate_max_rpd_pct:
+        rpd = rpd_pct(duplicate.concentration, parent.concentration)
+        if rpd is not None and rpd > criteria.duplicate_max_rpd_pct:
             yield Finding(
                 "duplicate.rpd",
                 Severity.FAIL,
@@ -323,3 +323,47 @@ def spike_recovery(context: AnalyteContext) -> Iterator[Finding]:
         )
         if finding:
             yield finding
+
+
+@rule("spike.rpd", "A matrix spike and its duplicate agree")
+def spike_rpd(context: AnalyteContext) -> Iterator[Finding]:
+    """Relative percent difference between a matrix spike and its spike duplicate.
+
+    Why: the pair shows the method's precision in the sample's own matrix, at a
+    level the spike makes measurable (US EPA 6010D / 6020B: RPD ≤ 20 % [memory]).
+    Each MSD is paired with the matrix spike of the same parent acquired
+    nearest before it (else the first). Settings: ``spike_max_rpd_pct`` (20).
+
+    Fails: S-09-MS Zn 24.1 and S-09-MSD 31.0 µg/L (RPD 25.0 %). Passes: 24.1 and
+    24.9 µg/L (RPD 3.3 %).
+    """
+    limit = context.criteria.spike_max_rpd_pct
+    spikes = context.of_kind(Kind.MS)
+    for duplicate in context.of_kind(Kind.MSD):
+        partners = [r for r in spikes if r.parent == duplicate.parent]
+        if not partners:
+            continue  # a lone MSD is judged by spike.recovery alone
+        earlier = [r for r in partners if r.seq < duplicate.seq]
+        spike = earlier[-1] if earlier else partners[0]
+        first, second = result_of(context, spike), result_of(context, duplicate)
+        if first is None or second is None:
+            continue
+        if first.concentration is None or second.concentration is None:
+            continue  # not quantifiable: another rule says so
+        rpd = rpd_pct(first.concentration, second.concentration)
+        if rpd is None or rpd <= limit:
+            continue
+        yield Finding(
+            "spike.rpd",
+            Severity.FAIL,
+            f"{duplicate.sample_id} {context.analyte} {number(second.concentration)} against "
+            f"{spike.sample_id} {number(first.concentration)}{context.unit}: RPD {rpd:.1f} %, "
+            f"limit ≤ {number(limit)} %",
+            analyte=context.analyte,
+            sample_id=duplicate.sample_id,
+            seq=duplicate.seq,
+            value=rpd,
+            limit=(None, limit),
+            flag=Flag.QC_FAILED,
+            affected=(duplicate.seq,),
+        )
