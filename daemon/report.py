@@ -58,10 +58,10 @@ def _reruns(document: dict[str, Any]) -> list[str]:
         lines.append("none")
     for entry in reruns:
         why = "; ".join(
-            f"{analyte} " + ", ".join(FLAG_WORDS[f] for f in flags if f in FLAG_WORDS)
+            f"{analyte}: " + ", ".join(FLAG_WORDS[f] for f in flags if f in FLAG_WORDS)
             for analyte, flags in entry["by_analyte"].items()
         )
-        line = f"{entry['sample_id']} (seq {entry['seq']}): {why}"
+        line = f"{entry['sample_id']} (seq {entry['seq']}) — {why}"
         if entry.get("suggested_dilution"):
             line += f"; dilute to {_number(entry['suggested_dilution'])}x in total"
         lines.append(line)

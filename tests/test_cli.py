@@ -42,7 +42,7 @@ def test_summary_names_the_samples_to_rerun(capsys: pytest.CaptureFixture[str]) 
     """The readable summary lists each sample to re-run and why."""
     main(["check", str(FAILING)])
     out = capsys.readouterr().out
-    assert "BW-1124-18 (seq 38): Cu over range; dilute to 5x in total" in out
+    assert "BW-1124-18 (seq 38) — Cu: over range; dilute to 5x in total" in out
     assert "Samples to re-run (13)" in out
 
 
