@@ -40,6 +40,8 @@ NEEDS_NOMINAL = frozenset({Kind.CAL, Kind.ICV, Kind.CCV, Kind.LCS})
 NEEDS_PARENT = frozenset({Kind.DUP, Kind.MS, Kind.MSD, Kind.ADDITION})
 #: Kinds that must say how much was added.
 NEEDS_ADDED = frozenset({Kind.MS, Kind.MSD, Kind.ADDITION})
+#: Matrix spikes: their ``added`` is the spiked concentration, so it must be positive.
+SPIKE_KINDS = frozenset({Kind.MS, Kind.MSD})
 #: Check standards: they open and close brackets.
 CHECK_KINDS = frozenset({Kind.ICV, Kind.CCV})
 #: Field samples: what brackets protect and what the frequency rule counts.
@@ -105,6 +107,12 @@ class Reading:
             )
         if self.kind in NEEDS_ADDED and self.added is None:
             raise InputError(f"a '{self.kind}' row needs the amount added", self.line, "added")
+        if self.kind in SPIKE_KINDS and self.added is not None and self.added <= 0:
+            raise InputError(
+                f"a '{self.kind}' row needs a spike greater than zero, got {self.added:g}",
+                self.line,
+                "added",
+            )
         if self.istd_response is not None and self.istd_response <= 0:
             raise InputError(
                 f"istd_response must be greater than zero, got {self.istd_response:g}",
@@ -134,6 +142,7 @@ class Run:
             raise InputError("the file holds no readings")
         seen: dict[tuple[int, str], int] = {}
         order: dict[str, None] = {}
+        units: dict[str, Reading] = {}
         for reading in self.readings:
             key = (reading.seq, reading.analyte)
             if key in seen:
@@ -145,6 +154,16 @@ class Run:
                 )
             seen[key] = reading.line
             order.setdefault(reading.analyte, None)
+            if reading.unit:
+                # One curve, one unit: a result in another unit would be off by its factor.
+                first = units.setdefault(reading.analyte, reading)
+                if first.unit != reading.unit:
+                    raise InputError(
+                        f"unit '{reading.unit}' of {reading.analyte} differs from "
+                        f"'{first.unit}' on line {first.line}; one analyte needs one unit",
+                        reading.line,
+                        "unit",
+                    )
         object.__setattr__(self, "analytes", tuple(order))
 
     @classmethod

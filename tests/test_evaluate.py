@@ -125,7 +125,7 @@ def _field_readings(draw: st.DrawFn) -> list[Reading]:
                 nominal=draw(st.floats(0, 100)) if needs_nominal else None,
                 dilution=draw(st.sampled_from([1.0, 2.0, 10.0])),
                 parent="X-0" if kind in (Kind.DUP, Kind.MS) else None,
-                added=draw(st.floats(0, 50)) if kind is Kind.MS else None,
+                added=draw(st.floats(0.1, 50)) if kind is Kind.MS else None,
             )
         )
     return readings

@@ -481,7 +481,7 @@ def test_order_rows_wide_numbers_every_row() -> None:
 
 def test_unit_run_and_instrument_fill_rows_lacking_them() -> None:
     """fmt.unit, run and instrument fill empty cells and never replace a given one."""
-    text = "seq,sample_id,kind,analyte,response,unit\n1,S-1,sample,Cu,5,\n2,S-2,sample,Cu,6,mg/L\n"
+    text = "seq,sample_id,kind,analyte,response,unit\n1,S-1,sample,Cu,5,\n2,S-2,sample,Zn,6,mg/L\n"
     fmt = layout(unit="µg/L", run="R-7", instrument="QX-7")
     table, _ = read(text, fmt)
     run = normalise(table)
