@@ -115,7 +115,9 @@ def _judge_analyte(
     preliminary: dict[int, Result] = {}
     for reading in rows:
         if reading.kind not in _NOT_QUANTITATED:
-            preliminary[reading.seq] = _quantitate(reading, fit, blank_signal, unit)
+            # A reading on another basis than the curve cannot be read off it.
+            usable = fit if calibration is not None and calibration.same_basis(reading) else None
+            preliminary[reading.seq] = _quantitate(reading, usable, blank_signal, unit)
     for addition in series.values():
         preliminary[addition.seqs[0]] = _addition_result(addition, unit)
 
@@ -180,11 +182,12 @@ def _calibrate(
     non_zero = [value for value in x if value > 0]
     istd = [r.istd_response for r in standards if r.istd_response is not None]
     fit: Fit | None = None
-    problem = None
-    try:
-        fit = fit_calibration(x, y, criteria.model, criteria.weighting)
-    except ValueError as error:
-        problem = str(error)
+    problem = _mixed_basis(rows, use_blanks=criteria.blank != "none")
+    if problem is None:
+        try:
+            fit = fit_calibration(x, y, criteria.model, criteria.weighting)
+        except ValueError as error:
+            problem = str(error)
 
     points = []
     for reading, value in zip(standards, y, strict=False):
@@ -227,6 +230,24 @@ def _calibrate(
         range_low=min(non_zero) if non_zero else None,
         range_high=max(non_zero) if non_zero else None,
         problem=problem,
+    )
+
+
+def _mixed_basis(rows: Sequence[Reading], *, use_blanks: bool) -> str | None:
+    """Why the calibration points cannot share one curve: some with an internal standard, some not.
+
+    Ratios and raw responses differ by the internal standard's size, so one
+    curve through both would be meaningless.
+    """
+    kinds = (Kind.CAL, Kind.BLANK) if use_blanks else (Kind.CAL,)
+    points = [r for r in rows if r.kind in kinds]
+    with_istd = [r for r in points if r.istd_response is not None]
+    if not with_istd or len(with_istd) == len(points):
+        return None
+    without = next(r for r in points if r.istd_response is None)
+    return (
+        f"{len(with_istd)} of {len(points)} calibration points have an internal-standard "
+        f"response and {without.sample_id} (line {without.line}) has none"
     )
 
 

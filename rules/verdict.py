@@ -6,7 +6,7 @@ from dataclasses import dataclass
 from enum import StrEnum
 
 from rules.calibration import AdditionResult, Fit, MandelResult
-from rules.model import Kind
+from rules.model import Kind, Reading
 
 
 class Severity(StrEnum):
@@ -125,6 +125,10 @@ class Calibration:
     range_low: float | None  # lowest non-zero standard
     range_high: float | None
     problem: str | None = None  # why there is no fit, in plain words
+
+    def same_basis(self, reading: Reading) -> bool:
+        """Whether ``reading`` is on this curve's basis: both ratios, or both raw responses."""
+        return (reading.istd_response is not None) == self.uses_internal_standard
 
 
 @dataclass(frozen=True, slots=True)

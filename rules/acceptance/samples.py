@@ -96,8 +96,11 @@ def range_on_curve(context: AnalyteContext) -> Iterator[Finding]:
         return
     for reading in context.readings:
         result = result_of(context, reading)
-        # Check standards are judged by check.recovery, addition series by addition.fit.
+        # Check standards are judged by check.recovery, addition series by addition.fit,
+        # readings on another basis than the curve by istd.recovery.
         if result is None or result.measured is not None or reading.kind in _OWN_RULE_KINDS:
+            continue
+        if not calibration.same_basis(reading):
             continue
         yield Finding(
             "range.on_curve",
@@ -160,7 +163,14 @@ def istd_recovery(context: AnalyteContext) -> Iterator[Finding]:
     Fails: S-11's atrazine-d5 at 55 % of the standards' mean. Passes: at 96 %.
     """
     calibration = context.calibration
-    if calibration is None or not calibration.istd_reference:
+    if calibration is None:
+        return
+    for reading in context.readings:
+        if reading.kind in (Kind.CAL, Kind.BLANK, Kind.ADDITION):
+            continue
+        if not calibration.same_basis(reading):
+            yield _basis_finding(context, reading, calibration.uses_internal_standard)
+    if not calibration.istd_reference:
         return
     reference = calibration.istd_reference
     limits = context.criteria.istd_recovery_pct
@@ -184,6 +194,24 @@ def istd_recovery(context: AnalyteContext) -> Iterator[Finding]:
             flag=Flag.ISTD_OUT,
             affected=(reading.seq,),
         )
+
+
+def _basis_finding(context: AnalyteContext, reading: Reading, curve_has_istd: bool) -> Finding:
+    why = (
+        "has no internal-standard response while the calibration uses one"
+        if curve_has_istd
+        else "has an internal-standard response while the calibration has none"
+    )
+    return Finding(
+        "istd.recovery",
+        Severity.FAIL,
+        f"{reading.sample_id} {context.analyte} {why}: it cannot be read off the curve",
+        analyte=context.analyte,
+        sample_id=reading.sample_id,
+        seq=reading.seq,
+        flag=Flag.ISTD_OUT,
+        affected=(reading.seq,),
+    )
 
 
 def _native(context: AnalyteContext, reading: Reading) -> tuple[Reading, Result] | None:
