@@ -99,7 +99,9 @@ def bracket_reportable(context: AnalyteContext) -> Iterator[Finding]:
     the last passing check, so every sample since then, and up to the next
     passing check, must be re-run (US EPA 6010D / 6020B, 200.8 [memory]).
     Samples before the first check standard are not bracketed either. Samples
-    after the last check are reported by ``bracket.closing``. No settings: it
+    after a passing last check are ``bracket.closing``'s concern (which a lab
+    may switch off); samples after a failing last check, or in a run with no
+    check at all, are unreportable here whatever that setting. No settings: it
     follows ``check.recovery``'s limits.
 
     Fails: CCV-2 Zn failed, so the Zn results between CCV-1 and CCV-3 are
@@ -112,19 +114,20 @@ def bracket_reportable(context: AnalyteContext) -> Iterator[Finding]:
         position = bisect_left(sequence.check_seqs, sample.seq)
         before = sequence.checks[position - 1] if position > 0 else None
         after = sequence.checks[position] if position < len(sequence.checks) else None
-        if after is None:
-            continue  # bracket.closing's case
-        if before is not None and passing[before.seq] and passing[after.seq]:
+        before_passed = before is not None and passing[before.seq]
+        if after is None and before_passed:
+            continue  # after a passing last check: bracket.closing's case
+        if before_passed and after is not None and passing[after.seq]:
             continue
-        key = (before.seq if before else None, after.seq)
+        key = (before.seq if before else None, after.seq if after else None)
         spans.setdefault(key, []).append(sample)
     for (before_seq, after_seq), samples in spans.items():
         if before_seq is None:
+            where = "before any check standard" if after_seq else "in a run with no check standard"
             yield Finding(
                 "bracket.reportable",
                 Severity.FAIL,
-                f"{_names(samples)} {context.analyte} acquired before any check standard: "
-                "not reportable",
+                f"{_names(samples)} {context.analyte} acquired {where}: not reportable",
                 analyte=context.analyte,
                 sample_id=samples[0].sample_id,
                 seq=samples[0].seq,
