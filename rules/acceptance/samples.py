@@ -18,6 +18,8 @@ from rules.model import Kind, Reading
 from rules.registry import AnalyteContext, rule
 from rules.verdict import Finding, Flag, Result, Severity
 
+#: Kinds a duplicate or spike may be made from.
+_PARENT_KINDS = frozenset({Kind.SAMPLE, Kind.LCS, Kind.MB})
 #: Kinds whose unquantifiable results another rule already reports.
 _OWN_RULE_KINDS = frozenset({Kind.ICV, Kind.CCV, Kind.ADDITION})
 #: Extra dilutions offered for an over-range sample, in the usual 1-2-5 steps.
@@ -215,9 +217,12 @@ def _basis_finding(context: AnalyteContext, reading: Reading, curve_has_istd: bo
 
 
 def _native(context: AnalyteContext, reading: Reading) -> tuple[Reading, Result] | None:
-    """The parent sample's reading and result (the nearest one acquired before, else the first)."""
+    """The parent's reading and result (the nearest one acquired before, else the first).
+
+    A parent may be a sample, an LCS or a method blank (an LCS duplicate is routine).
+    """
     candidates = [
-        r for r in context.readings if r.kind is Kind.SAMPLE and r.sample_id == reading.parent
+        r for r in context.readings if r.kind in _PARENT_KINDS and r.sample_id == reading.parent
     ]
     if not candidates:
         return None
