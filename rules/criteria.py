@@ -90,6 +90,11 @@ class Criteria(_Frozen):
 
     @model_validator(mode="after")
     def _overrides_valid(self) -> Criteria:
+        seen: dict[str, str] = {}
+        for analyte in self.analytes:
+            other = seen.setdefault(analyte.strip().casefold(), analyte)
+            if other != analyte:
+                raise ValueError(f"analytes: '{other}' and '{analyte}' name the same analyte")
         for analyte, override in self.analytes.items():
             try:
                 AnalyteCriteria.model_validate({**self.defaults.model_dump(), **override})
@@ -98,8 +103,13 @@ class Criteria(_Frozen):
         return self
 
     def for_analyte(self, analyte: str) -> AnalyteCriteria:
-        """The defaults with this analyte's overrides applied."""
-        override = self.analytes.get(analyte)
+        """The defaults with this analyte's overrides applied (names matched ignoring case)."""
+        # Analyte names are matched ignoring case and surrounding spaces, as elsewhere.
+        wanted = analyte.strip().casefold()
+        override = next(
+            (value for name, value in self.analytes.items() if name.strip().casefold() == wanted),
+            None,
+        )
         if not override:
             return self.defaults
         return AnalyteCriteria.model_validate({**self.defaults.model_dump(), **override})

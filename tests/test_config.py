@@ -91,3 +91,15 @@ def test_loading_a_configuration_checks_disabled_rule_ids(tmp_path: Path) -> Non
     path.write_text("criteria:\n  disabled_rules: [range.undr]\n", encoding="utf-8")
     with pytest.raises(ConfigError, match=r"lab\.yaml: criteria\.disabled_rules: unknown rule id"):
         load_config(path)
+
+
+def test_analyte_override_matches_ignoring_case() -> None:
+    """An override written for 'ZN' applies to analyte 'Zn', as header names match ignoring case."""
+    criteria = build_criteria({"analytes": {"ZN": {"ccv_recovery_pct": [85, 115]}}})
+    assert criteria.for_analyte("Zn").ccv_recovery_pct == (85, 115)
+
+
+def test_two_overrides_for_one_analyte_are_refused() -> None:
+    """Overrides under 'Zn' and 'zn' are refused: they name the same analyte."""
+    with pytest.raises(ConfigError, match="name the same analyte"):
+        build_criteria({"analytes": {"Zn": {}, "zn": {}}})
