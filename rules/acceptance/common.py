@@ -7,7 +7,7 @@ from collections.abc import Iterator
 from rules.criteria import Range
 from rules.model import REPORTABLE_KINDS, Kind, Reading
 from rules.registry import AnalyteContext
-from rules.verdict import Finding, Flag, Result, Severity
+from rules.verdict import Calibration, Finding, Flag, Result, Severity
 
 
 def number(value: float) -> str:
@@ -97,3 +97,41 @@ def quantitated_field_results(context: AnalyteContext) -> Iterator[tuple[Reading
         result = context.results.get(reading.seq)
         if result is not None and result.measured is not None:
             yield reading, result.measured
+
+
+def below_the_curve(calibration: Calibration, signal: float) -> bool:
+    """Whether a response no concentration gives lies on the low side of the calibrated range.
+
+    A quadratic has no concentration for responses beyond its turning point: past
+    the top when it bends over (over range), under the bottom when it curves
+    upwards (below range). Which side is told by the response at the lowest standard.
+    """
+    fit = calibration.fit
+    if fit is None:
+        return False
+    low = calibration.range_low if calibration.range_low is not None else fit.x_low
+    high = calibration.range_high if calibration.range_high is not None else fit.x_high
+    at_low = fit.predict(low)
+    rising = fit.predict(high) >= at_low
+    return signal < at_low if rising else signal > at_low
+
+
+def off_curve_results(context: AnalyteContext) -> Iterator[tuple[Reading, Result, bool]]:
+    """Results no concentration on the curve gives, with whether they lie below the range.
+
+    Check standards (check.recovery), addition series (addition.fit) and readings
+    on another basis than the curve (istd.recovery) are left to their own rules.
+    """
+    calibration = context.calibration
+    if calibration is None or calibration.fit is None:
+        return
+    for reading in context.readings:
+        result = context.results.get(reading.seq)
+        if result is None or result.measured is not None or result.signal is None:
+            continue
+        if reading.kind in _OWN_RULE_KINDS or not calibration.same_basis(reading):
+            continue
+        yield reading, result, below_the_curve(calibration, result.signal)
+
+
+_OWN_RULE_KINDS = frozenset({Kind.ICV, Kind.CCV, Kind.ADDITION})

@@ -6,6 +6,7 @@ from collections.abc import Iterator
 
 from rules.acceptance.common import (
     number,
+    off_curve_results,
     quantitated_field_results,
     recovery_finding,
     recovery_pct,
@@ -14,14 +15,12 @@ from rules.acceptance.common import (
     span,
     within,
 )
-from rules.model import Kind, Reading
+from rules.model import REPORTABLE_KINDS, Kind, Reading
 from rules.registry import AnalyteContext, rule
 from rules.verdict import Finding, Flag, Result, Severity
 
 #: Kinds a duplicate or spike may be made from.
 _PARENT_KINDS = frozenset({Kind.SAMPLE, Kind.LCS, Kind.MB})
-#: Kinds whose unquantifiable results another rule already reports.
-_OWN_RULE_KINDS = frozenset({Kind.ICV, Kind.CCV, Kind.ADDITION})
 #: Extra dilutions offered for an over-range sample, in the usual 1-2-5 steps.
 _DILUTION_STEPS = (2, 5, 10, 20, 50, 100, 200, 500, 1000, 2000, 5000, 10000)
 #: An over-range sample is diluted to land at or below this share of the top standard,
@@ -90,25 +89,21 @@ def range_on_curve(context: AnalyteContext) -> Iterator[Finding]:
     it has no concentration on the calibrated branch, which is an over-range
     result in all but name (common practice). No settings.
 
+    A response under the bottom of an upward-curving quadratic is below the
+    range instead, and ``range.under`` reports it.
+
     Fails: S-04 Na response 2.1e6 on a curve whose maximum is 1.9e6. Passes:
     S-04 Na response 1.2e6, read at 31 mg/L.
     """
-    calibration = context.calibration
-    if calibration is None or calibration.fit is None:
-        return
-    for reading in context.readings:
-        result = result_of(context, reading)
-        # Check standards are judged by check.recovery, addition series by addition.fit,
-        # readings on another basis than the curve by istd.recovery.
-        if result is None or result.measured is not None or reading.kind in _OWN_RULE_KINDS:
-            continue
-        if not calibration.same_basis(reading):
-            continue
+    for reading, result, below in off_curve_results(context):
+        if below:
+            continue  # range.under's case: under the bottom of an upward curve
         yield Finding(
             "range.on_curve",
             Severity.FAIL,
             f"{reading.sample_id} {context.analyte}: no concentration on the calibrated curve "
-            f"gives response {number(result.signal or 0.0)}: dilute and re-run",
+            f"gives response {number(result.signal or 0.0)} (above the curve's top): "
+            "dilute and re-run",
             analyte=context.analyte,
             sample_id=reading.sample_id,
             seq=reading.seq,
@@ -146,6 +141,22 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
                 sample_id=reading.sample_id,
                 seq=reading.seq,
                 value=measured,
+                limit=(low, None),
+                flag=Flag.BELOW_RANGE,
+                affected=(reading.seq,),
+            )
+    for reading, result, below in off_curve_results(context):
+        if below and reading.kind in REPORTABLE_KINDS:
+            yield Finding(
+                "range.under",
+                Severity.WARN,
+                f"{reading.sample_id} {context.analyte} response {number(result.signal or 0.0)} "
+                "is under the bottom of the curve: below the lowest standard "
+                f"({number(low)}{context.unit}), no concentration given",
+                analyte=context.analyte,
+                sample_id=reading.sample_id,
+                seq=reading.seq,
+                value=result.signal,
                 limit=(low, None),
                 flag=Flag.BELOW_RANGE,
                 affected=(reading.seq,),
