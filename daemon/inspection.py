@@ -8,14 +8,21 @@ first problem as ``check`` must.
 
 from __future__ import annotations
 
+import codecs
 from collections import Counter
 from dataclasses import dataclass, replace
 from pathlib import Path
 
 from daemon.config import AppConfig
-from daemon.formats import ExportFormat
 from daemon.layout import Detected, export_table
-from daemon.reader import NATIVE_FIELDS, RawTable, normalise
+from daemon.reader import (
+    NATIVE_FIELDS,
+    RawTable,
+    decode_table,
+    header_key,
+    normalise,
+    read_file_bytes,
+)
 from rules.errors import InputError
 from rules.model import Reading
 
@@ -36,13 +43,14 @@ class Inspection:
 
 def inspect_file(path: Path, config: AppConfig) -> Inspection:
     """Read ``path`` as ``check`` would and collect every problem, not only the first."""
-    layout = config.format or ExportFormat()
     try:
-        data = path.read_bytes()
-    except OSError as error:
-        return Inspection(path, None, None, (), (), f"cannot read {path}: {error.strerror}")
-    try:
-        table, detected = export_table(data, layout, source=str(path), suffix=path.suffix)
+        data = read_file_bytes(path)
+        if config.format is None:
+            table, detected = _native_table(data, str(path))
+        else:
+            table, detected = export_table(
+                data, config.format, source=str(path), suffix=path.suffix
+            )
     except InputError as error:
         return Inspection(path, None, None, (), (), str(error))
 
@@ -59,6 +67,15 @@ def inspect_file(path: Path, config: AppConfig) -> Inspection:
         except InputError as error:
             problems.append(str(error))
     return Inspection(path, detected, table, tuple(readings), tuple(problems), None)
+
+
+def _native_table(data: bytes, source: str) -> tuple[RawTable, Detected]:
+    """The native reader's table, described as the layout reader describes its own."""
+    table = decode_table(data, source=source)
+    keys = {header_key(name): name for name in table.header}
+    columns = {field: keys[field] for field in NATIVE_FIELDS if field in keys}
+    encoding = "utf-8 (with BOM)" if data.startswith(codecs.BOM_UTF8) else "utf-8"
+    return table, Detected("csv", encoding, ",", table.header_line, None, columns, (), ())
 
 
 def _describe_reading(reading: Reading) -> tuple[str, ...]:

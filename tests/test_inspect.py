@@ -57,3 +57,14 @@ def test_inspect_of_a_native_file_needs_no_configuration(
     """A native file inspects cleanly with no configuration at all."""
     assert main(["inspect", str(PROJECT / "fixtures" / "bwl-metals-pass.csv")]) == 0
     assert "problems: none" in capsys.readouterr().out
+
+
+def test_inspect_without_a_format_reads_as_check_does(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """With no format configured, a semicolon file is refused by inspect as check refuses it."""
+    path = tmp_path / "run.csv"
+    path.write_text(HEADER.replace(",", ";") + "1;CAL-1;cal;Zn;1000;1\n", encoding="utf-8")
+    assert main(["inspect", str(path)]) == 2
+    assert main(["check", str(path)]) == 2
+    assert "required columns" in capsys.readouterr().out
