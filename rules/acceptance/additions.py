@@ -18,6 +18,9 @@ def addition_fit(context: AnalyteContext) -> Iterator[Finding]:
     included, and r² ≥ 0.99). Settings: ``addition_min_points`` (3),
     ``addition_min_r_squared`` (0.99).
 
+    A negative result (the unspiked response below the blank) is a warning: it
+    is not a concentration.
+
     Fails: W-12 Pb with two points, or with r² = 0.962. Passes: four points,
     r² = 0.9994.
     """
@@ -37,6 +40,22 @@ def addition_fit(context: AnalyteContext) -> Iterator[Finding]:
             shown = "undetermined" if r_squared is None else f"{r_squared:.4f}"
             problem = f"r² = {shown}, limit ≥ {number(criteria.addition_min_r_squared)}"
             value, limit = r_squared, (criteria.addition_min_r_squared, None)
+        outcome = series.outcome
+        if problem is None and outcome is not None and outcome.concentration < 0:
+            yield Finding(
+                "addition.fit",
+                Severity.WARN,
+                f"standard addition of {context.analyte} in {parent} gives "
+                f"{number(outcome.concentration)}{context.unit}: the unspiked response is "
+                "below the blank, so the native concentration is not determined",
+                analyte=context.analyte,
+                sample_id=parent,
+                seq=seqs[0],
+                value=outcome.concentration,
+                limit=(0.0, None),
+                flag=Flag.BELOW_RANGE,
+                affected=(seqs[0],),
+            )
         if problem:
             yield Finding(
                 "addition.fit",
