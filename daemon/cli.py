@@ -97,6 +97,8 @@ def _check(args: argparse.Namespace) -> int:
             write_outputs(args.out, args.file.stem, document, judgement.table, judgement.verdict)
         except OSError as error:
             print(f"calwarden: cannot write to {args.out}: {error}", file=sys.stderr)
+            if args.json:  # --json always puts the verdict on stdout
+                print(dump_verdict(document))
             return EXIT_ERROR
     if args.json:
         print(dump_verdict(document))

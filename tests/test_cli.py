@@ -172,3 +172,15 @@ def test_flagged_copy_of_a_wide_export_keeps_each_analyte_apart(tmp_path: Path) 
         if line[concentration] and line[kind] != "cal":  # standards carry their read-back value
             found[(int(line[seq]), line[analyte])] = line[concentration]
     assert found == expected
+
+
+def test_unwritable_out_still_prints_the_json(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """With --json, an --out folder that cannot be written still leaves the verdict on stdout."""
+    blocker = tmp_path / "file-not-folder"
+    blocker.write_text("", encoding="utf-8")
+    assert main(["check", str(PASSING), "--json", "--out", str(blocker / "out")]) == 2
+    captured = capsys.readouterr()
+    assert json.loads(captured.out)["status"] == "pass"
+    assert "cannot write" in captured.err
