@@ -47,6 +47,7 @@ import hashlib
 import io
 import re
 import warnings
+import zipfile
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, time
@@ -54,6 +55,7 @@ from itertools import islice
 from operator import itemgetter
 from pathlib import Path
 from typing import Any
+from xml.etree import ElementTree
 
 import openpyxl  # type: ignore[import-untyped]
 
@@ -333,6 +335,7 @@ def _xlsx_grid(data: bytes, fmt: ExportFormat, max_bytes: int) -> _Grid:
             book = openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=True)
             try:
                 sheet = _sheet(book, fmt.sheet)
+                _refuse_hidden_values(data, getattr(sheet, "_worksheet_path", None))
                 # The stored dimensions may be wrong or huge; read only the cells present.
                 sheet.reset_dimensions()
                 used = 0
@@ -355,6 +358,38 @@ def _xlsx_grid(data: bytes, fmt: ExportFormat, max_bytes: int) -> _Grid:
     except Exception as exc:  # openpyxl raises anything at all on a damaged workbook
         raise InputError(f"not a readable XLSX workbook ({type(exc).__name__}: {exc})") from None
     return _grid_of_rows(rows, fmt, title)
+
+
+def _refuse_hidden_values(data: bytes, sheet_path: str | None) -> None:
+    """Refuse a sheet whose values read-only mode cannot see: merged cells, uncomputed formulas.
+
+    Read-only mode returns a merged range's value in its first cell only, and a
+    formula's value only when the program that saved the workbook stored one;
+    either would silently read as an empty cell (an empty dilution means 1). The
+    sheet's XML is scanned for both. ``sheet_path`` is openpyxl's own record of
+    where the sheet lives in the archive (a private attribute: without it the
+    scan is skipped rather than guessed).
+    """
+    if sheet_path is None:
+        return
+    with zipfile.ZipFile(io.BytesIO(data)) as archive, archive.open(sheet_path) as stream:
+        for _, element in ElementTree.iterparse(stream):
+            tag = element.tag.rpartition("}")[2]
+            if tag == "mergeCell":
+                raise InputError(
+                    f"the sheet has merged cells ({element.get('ref')}): only their first "
+                    "cell holds the value; unmerge them (fill every cell) and export again"
+                )
+            if tag == "c":
+                children = {child.tag.rpartition("}")[2]: child for child in element}
+                value = children.get("v")
+                if "f" in children and (value is None or not (value.text or "").strip()):
+                    raise InputError(
+                        f"cell {element.get('r')} holds a formula whose value was never "
+                        "computed; open and save the workbook in a spreadsheet program, or "
+                        "export values"
+                    )
+                element.clear()
 
 
 def _sheet(book: Any, name: str | None) -> Any:

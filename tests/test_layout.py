@@ -637,3 +637,39 @@ def test_analyte_names_rename_wide_columns() -> None:
         analyte_names={"66Zn": "Zn"},
     )
     assert [r.analyte for r in readings(text, fmt)] == ["Zn", "63Cu"]
+
+
+# --------------------------------------------------------------------------- hidden xlsx values
+
+
+def _workbook(tmp_path: Path, rows: list[list[object]], merge: str | None = None) -> bytes:
+    book = openpyxl.Workbook()
+    sheet = book.active
+    for row in rows:
+        sheet.append(row)
+    if merge:
+        sheet.merge_cells(merge)
+    path = tmp_path / "run.xlsx"
+    book.save(path)
+    return path.read_bytes()
+
+
+XLSX_ROWS: list[list[object]] = [
+    ["seq", "sample_id", "kind", "analyte", "response", "dilution"],
+    [1, "S-1", "sample", "Zn", 100, 10],
+    [1, "S-1", "sample", "Cu", 200, None],
+]
+
+
+def test_merged_cells_are_refused_not_read_as_empty(tmp_path: Path) -> None:
+    """A merged dilution cell would read as empty (dilution 1) on all but its first row: refused."""
+    data = _workbook(tmp_path, XLSX_ROWS, merge="F2:F3")
+    with pytest.raises(InputError, match=r"merged cells \(F2:F3\)"):
+        read(data, layout(), suffix=".xlsx")
+
+
+def test_formula_without_a_stored_value_is_refused(tmp_path: Path) -> None:
+    """A formula the saving program never computed would read as empty: refused, naming the cell."""
+    rows = [XLSX_ROWS[0], [1, "S-1", "sample", "Zn", 100, "=2*5"]]
+    with pytest.raises(InputError, match="cell F2 holds a formula"):
+        read(_workbook(tmp_path, rows), layout(), suffix=".xlsx")
