@@ -37,6 +37,8 @@ Choices the format leaves open, made here once:
   reads; other floats ``repr``; dates and times ISO 8601; booleans
   ``TRUE``/``FALSE``. The decimal and thousands separators describe text, so
   they are never applied to a cell the workbook stored as a number.
+  Merged cells and formulas without a stored value are refused: read-only mode
+  would see them as empty cells.
 """
 
 from __future__ import annotations
