@@ -186,7 +186,7 @@ def _calibrate(
     if problem is None:
         try:
             fit = fit_calibration(x, y, criteria.model, criteria.weighting)
-        except ValueError as error:
+        except (ValueError, ArithmeticError) as error:  # degenerate numbers: no fit, said why
             problem = str(error)
 
     points = []
@@ -290,7 +290,7 @@ def _standard_additions(
         problem = None
         try:
             outcome = standard_addition(added, signals)
-        except ValueError as error:
+        except (ValueError, ArithmeticError) as error:  # degenerate numbers: no fit, said why
             problem = str(error)
         series[parent] = AdditionSeries(
             analyte=analyte,
