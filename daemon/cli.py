@@ -84,7 +84,8 @@ def _check(args: argparse.Namespace) -> int:
 
     try:
         config = load_config(args.config)
-        judgement = judge_file(args.file, config)
+        summary_only = not args.json and args.out is None
+        judgement = judge_file(args.file, config, summary_only=summary_only)
     except ConfigError as error:
         return _check_failed(args, f"configuration error: {error}")
     except Exception as error:  # a bug of ours must still give a verdict, not a traceback

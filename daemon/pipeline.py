@@ -48,8 +48,10 @@ def error_document(path: Path, message: str, criteria_sha256: str | None) -> dic
     )
 
 
-def judge_file(path: Path, config: AppConfig) -> Judgement:
+def judge_file(path: Path, config: AppConfig, *, summary_only: bool = False) -> Judgement:
     """Judge one file; broken input gives an ``error`` verdict, never an exception.
+
+    ``summary_only`` leaves the document's ``results`` empty (for the terminal summary).
 
     A ConfigError (e.g. a disabled rule id that does not exist) propagates:
     it is the configuration's fault, not the file's.
@@ -66,6 +68,10 @@ def judge_file(path: Path, config: AppConfig) -> Judgement:
         return Judgement(error_document(path, str(error), criteria_sha256), None, None)
     verdict = evaluate(parsed.run, config.criteria)
     document = verdict_to_json(
-        verdict, source_path=str(path), sha256=parsed.sha256, criteria_sha256=criteria_sha256
+        verdict,
+        source_path=str(path),
+        sha256=parsed.sha256,
+        criteria_sha256=criteria_sha256,
+        with_results=not summary_only,
     )
     return Judgement(document, parsed.table, verdict)

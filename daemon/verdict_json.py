@@ -169,8 +169,13 @@ def verdict_to_json(
     source_path: str,
     sha256: str | None,
     criteria_sha256: str | None,
+    with_results: bool = True,
 ) -> dict[str, Any]:
-    """The verdict JSON document."""
+    """The verdict JSON document; ``with_results=False`` leaves ``results`` empty.
+
+    The terminal summary needs no per-result entries, and on a large run they are
+    most of the document's cost.
+    """
     sample_ids = {r.seq: r.sample_id for r in verdict.results if r.seq is not None}
     for calibration in verdict.calibrations:
         sample_ids.update({s.seq: s.sample_id for s in calibration.standards})
@@ -185,7 +190,7 @@ def verdict_to_json(
         "caution": CAUTION,
         "findings": [_finding(f, sample_ids) for f in verdict.findings],
         "calibrations": {c.analyte: _calibration(c) for c in verdict.calibrations},
-        "results": [_result(r) for r in verdict.results],
+        "results": [_result(r) for r in verdict.results] if with_results else [],
         "additions": [_addition(a) for a in verdict.additions],
         "reruns": rerun_list(verdict),
         "error": verdict.error,
