@@ -41,10 +41,24 @@ def _report(name: str, timings: list[float], target: float) -> None:
           f"target < {target} s: {verdict}")  # fmt: skip
 
 
+def _machine_speed() -> float:
+    """Seconds for a fixed pure-Python workload: how fast this machine is right now.
+
+    The machine is shared and its speed varies; compare figures only between
+    runs where this workload took about the same time.
+    """
+    start = time.perf_counter()
+    total = 0
+    for value in range(5_000_000):
+        total += value % 7
+    return time.perf_counter() - start
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeat", type=int, default=5)
     args = parser.parse_args()
+    print(f"machine speed: fixed workload {_machine_speed():.3f} s (lower is faster)")
     command = [sys.executable, "-m", "daemon", "check"]
     with tempfile.TemporaryDirectory() as folder:
         large = Path(folder) / "large.csv"
