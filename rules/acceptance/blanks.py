@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from rules.acceptance.common import number, result_of
+from rules.acceptance.common import number, reading_finding, result_of
 from rules.model import Kind
 from rules.registry import AnalyteContext, rule
 from rules.verdict import Finding, Flag, Severity
@@ -33,16 +33,14 @@ def blank_contamination(context: AnalyteContext) -> Iterator[Finding]:
         if result is None or result.measured is None:
             continue  # not quantifiable: calibration.present or range.on_curve says so
         if abs(result.measured) >= limit:
-            yield Finding(
+            yield reading_finding(
                 "blank.contamination",
                 Severity.FAIL,
+                context,
+                reading,
                 f"{reading.sample_id} {context.analyte} at {number(result.measured)}"
                 f"{context.unit}, limit below {number(limit)}{context.unit}",
-                analyte=context.analyte,
-                sample_id=reading.sample_id,
-                seq=reading.seq,
                 value=result.measured,
                 limit=(-limit, limit),
                 flag=Flag.QC_FAILED,
-                affected=(reading.seq,),
             )

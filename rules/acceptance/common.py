@@ -7,7 +7,7 @@ from collections.abc import Iterator
 from rules.criteria import Range
 from rules.model import REPORTABLE_KINDS, Kind, Reading
 from rules.registry import AnalyteContext
-from rules.verdict import Calibration, Finding, Flag, Result, Severity
+from rules.verdict import Calibration, Finding, Flag, Limit, Result, Severity
 
 
 def number(value: float) -> str:
@@ -62,6 +62,32 @@ def result_of(context: AnalyteContext, reading: Reading) -> Result | None:
     return context.results.get(reading.seq)
 
 
+def reading_finding(
+    rule_id: str,
+    severity: Severity,
+    context: AnalyteContext,
+    reading: Reading,
+    message: str,
+    *,
+    value: float | None = None,
+    limit: Limit | None = None,
+    flag: Flag | None = None,
+) -> Finding:
+    """A finding about one reading of the context's analyte; ``flag`` goes on its result."""
+    return Finding(
+        rule_id,
+        severity,
+        message,
+        analyte=context.analyte,
+        sample_id=reading.sample_id,
+        seq=reading.seq,
+        value=value,
+        limit=limit,
+        flag=flag,
+        affected=(reading.seq,),
+    )
+
+
 def recovery_finding(
     rule_id: str,
     context: AnalyteContext,
@@ -75,17 +101,15 @@ def recovery_finding(
     if recovery is not None and within(recovery, limits):
         return None
     found = missing if recovery is None else f"recovered {recovery:.1f} %"
-    return Finding(
+    return reading_finding(
         rule_id,
         Severity.FAIL,
+        context,
+        reading,
         f"{reading.sample_id} {context.analyte} {found}{detail}, limit {span(limits)}",
-        analyte=context.analyte,
-        sample_id=reading.sample_id,
-        seq=reading.seq,
         value=recovery,
         limit=limits,
         flag=Flag.QC_FAILED,
-        affected=(reading.seq,),
     )
 
 

@@ -8,6 +8,7 @@ from rules.acceptance.common import (
     number,
     off_curve_results,
     quantitated_field_results,
+    reading_finding,
     recovery_finding,
     recovery_pct,
     result_of,
@@ -65,19 +66,17 @@ def range_over(context: AnalyteContext) -> Iterator[Finding]:
                 if dilution
                 else "dilute and re-run (beyond a 10000-fold dilution: plan it by hand)"
             )
-            yield Finding(
+            yield reading_finding(
                 "range.over",
                 Severity.FAIL,
+                context,
+                reading,
                 f"{reading.sample_id} {context.analyte} at {number(measured)}"
                 f"{context.unit} in the measured solution is over range (top standard "
                 f"{number(top)}{context.unit}): {advice}",
-                analyte=context.analyte,
-                sample_id=reading.sample_id,
-                seq=reading.seq,
                 value=measured,
                 limit=(None, top),
                 flag=Flag.OVER_RANGE,
-                affected=(reading.seq,),
             )
 
 
@@ -98,18 +97,16 @@ def range_on_curve(context: AnalyteContext) -> Iterator[Finding]:
     for reading, result, below in off_curve_results(context):
         if below:
             continue  # range.under's case: under the bottom of an upward curve
-        yield Finding(
+        yield reading_finding(
             "range.on_curve",
             Severity.FAIL,
+            context,
+            reading,
             f"{reading.sample_id} {context.analyte}: no concentration on the calibrated curve "
             f"gives response {number(result.signal or 0.0)} (above the curve's top): "
             "dilute and re-run",
-            analyte=context.analyte,
-            sample_id=reading.sample_id,
-            seq=reading.seq,
             value=result.signal,
             flag=Flag.NOT_QUANTIFIABLE,
-            affected=(reading.seq,),
         )
 
 
@@ -131,35 +128,31 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
     low = calibration.range_low
     for reading, measured in quantitated_field_results(context):
         if measured < low:
-            yield Finding(
+            yield reading_finding(
                 "range.under",
                 Severity.WARN,
+                context,
+                reading,
                 f"{reading.sample_id} {context.analyte} at {number(measured)}"
                 f"{context.unit} is below the lowest standard ({number(low)}{context.unit}): "
                 "estimated value",
-                analyte=context.analyte,
-                sample_id=reading.sample_id,
-                seq=reading.seq,
                 value=measured,
                 limit=(low, None),
                 flag=Flag.BELOW_RANGE,
-                affected=(reading.seq,),
             )
     for reading, result, below in off_curve_results(context):
         if below and reading.kind in REPORTABLE_KINDS:
-            yield Finding(
+            yield reading_finding(
                 "range.under",
                 Severity.WARN,
+                context,
+                reading,
                 f"{reading.sample_id} {context.analyte} response {number(result.signal or 0.0)} "
                 "is under the bottom of the curve: below the lowest standard "
                 f"({number(low)}{context.unit}), no concentration given",
-                analyte=context.analyte,
-                sample_id=reading.sample_id,
-                seq=reading.seq,
                 value=result.signal,
                 limit=(low, None),
                 flag=Flag.BELOW_RANGE,
-                affected=(reading.seq,),
             )
 
 
@@ -194,18 +187,16 @@ def istd_recovery(context: AnalyteContext) -> Iterator[Finding]:
         if within(recovery, limits):
             continue
         name = reading.istd or "internal standard"
-        yield Finding(
+        yield reading_finding(
             "istd.recovery",
             Severity.FAIL,
+            context,
+            reading,
             f"{reading.sample_id} {name} (for {context.analyte}) at {recovery:.1f} % of the "
             f"standards' mean, limit {span(limits)}",
-            analyte=context.analyte,
-            sample_id=reading.sample_id,
-            seq=reading.seq,
             value=recovery,
             limit=limits,
             flag=Flag.ISTD_OUT,
-            affected=(reading.seq,),
         )
 
 
@@ -215,15 +206,13 @@ def _basis_finding(context: AnalyteContext, reading: Reading, curve_has_istd: bo
         if curve_has_istd
         else "has an internal-standard response while the calibration has none"
     )
-    return Finding(
+    return reading_finding(
         "istd.recovery",
         Severity.FAIL,
+        context,
+        reading,
         f"{reading.sample_id} {context.analyte} {why}: it cannot be read off the curve",
-        analyte=context.analyte,
-        sample_id=reading.sample_id,
-        seq=reading.seq,
         flag=Flag.ISTD_OUT,
-        affected=(reading.seq,),
     )
 
 
@@ -244,15 +233,13 @@ def _native(context: AnalyteContext, reading: Reading) -> tuple[Reading, Result]
 
 
 def _not_judged(rule_id: str, context: AnalyteContext, reading: Reading, why: str) -> Finding:
-    return Finding(
+    return reading_finding(
         rule_id,
         Severity.INFO,
+        context,
+        reading,
         f"{reading.sample_id} {context.analyte} not judged: {why}",
-        analyte=context.analyte,
-        sample_id=reading.sample_id,
-        seq=reading.seq,
         flag=Flag.NOT_JUDGED,
-        affected=(reading.seq,),
     )
 
 
@@ -277,16 +264,14 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
         duplicate = result_of(context, reading)
         native = _native(context, reading)
         if native is None:
-            yield Finding(
+            yield reading_finding(
                 "duplicate.rpd",
                 Severity.WARN,
+                context,
+                reading,
                 f"{reading.sample_id} {context.analyte}: parent sample '{reading.parent}' "
                 "is not in this run, precision not shown",
-                analyte=context.analyte,
-                sample_id=reading.sample_id,
-                seq=reading.seq,
                 flag=Flag.NOT_JUDGED,
-                affected=(reading.seq,),
             )
             continue
         parent = native[1]
@@ -308,19 +293,17 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
             continue
         rpd = rpd_pct(duplicate.concentration, parent.concentration)
         if rpd is not None and rpd > criteria.duplicate_max_rpd_pct:
-            yield Finding(
+            yield reading_finding(
                 "duplicate.rpd",
                 Severity.FAIL,
+                context,
+                reading,
                 f"{reading.sample_id} {context.analyte} {number(duplicate.concentration)} against "
                 f"{reading.parent} {number(parent.concentration)}{context.unit}: RPD {rpd:.1f} %, "
                 f"limit ≤ {number(criteria.duplicate_max_rpd_pct)} %",
-                analyte=context.analyte,
-                sample_id=reading.sample_id,
-                seq=reading.seq,
                 value=rpd,
                 limit=(None, criteria.duplicate_max_rpd_pct),
                 flag=Flag.QC_FAILED,
-                affected=(reading.seq,),
             )
 
 
@@ -397,17 +380,15 @@ def spike_rpd(context: AnalyteContext) -> Iterator[Finding]:
         rpd = rpd_pct(first.concentration, second.concentration)
         if rpd is None or rpd <= limit:
             continue
-        yield Finding(
+        yield reading_finding(
             "spike.rpd",
             Severity.FAIL,
+            context,
+            duplicate,
             f"{duplicate.sample_id} {context.analyte} {number(second.concentration)} against "
             f"{spike.sample_id} {number(first.concentration)}{context.unit}: RPD {rpd:.1f} %, "
             f"limit ≤ {number(limit)} %",
-            analyte=context.analyte,
-            sample_id=duplicate.sample_id,
-            seq=duplicate.seq,
             value=rpd,
             limit=(None, limit),
             flag=Flag.QC_FAILED,
-            affected=(duplicate.seq,),
         )
