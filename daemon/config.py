@@ -8,11 +8,12 @@ whose message names the key (``criteria.defaults.min_r_sqared: unknown key
 from __future__ import annotations
 
 import difflib
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from daemon.formats import (
     ColumnByPattern,
@@ -24,6 +25,7 @@ from daemon.formats import (
     NominalSection,
     WideSection,
 )
+from daemon.watch_settings import InboxSettings, WatchSettings, merge_criteria
 from rules.criteria import AnalyteCriteria, Criteria
 from rules.errors import ConfigError
 from rules.evaluate import active_rules
@@ -39,6 +41,25 @@ class AppConfig(BaseModel):
         default=None,
         description="the layout of the instrument's export; absent: calwarden's native CSV",
     )
+    watch: WatchSettings = Field(default_factory=WatchSettings)
+    inboxes: tuple[InboxSettings, ...] = Field(
+        default=(),
+        description="folders to watch, each with its own instrument, patterns, layout and "
+        "criteria; `calwarden watch INBOX` watches INBOX instead",
+    )
+
+    @model_validator(mode="after")
+    def _inbox_names_unique(self) -> AppConfig:
+        seen: set[str] = set()
+        for index, inbox in enumerate(self.inboxes):
+            name = (inbox.name or inbox.path.name).casefold()
+            if name in seen:
+                raise ValueError(
+                    f"inboxes[{index}]: a second inbox named '{inbox.name or inbox.path.name}'; "
+                    "give each a distinct name"
+                )
+            seen.add(name)
+        return self
 
 
 class _StrictLoader(yaml.SafeLoader):
@@ -87,6 +108,8 @@ def _known_keys() -> list[str]:
         NominalSection,
         WideSection,
         ColumnByPattern,
+        WatchSettings,
+        InboxSettings,
     )
     return [name for model in models for name in model.model_fields]
 
@@ -123,14 +146,33 @@ def build_config(data: Any, source: str) -> AppConfig:
         raise ConfigError(
             f"{source}: the configuration must be a mapping of keys, not {type(data).__name__}"
         )
+    inboxes = data.get("inboxes")
+    if isinstance(inboxes, list) and isinstance(data.get("criteria"), dict):
+        # An inbox's criteria are laid over the top-level ones before validation,
+        # so an error still names the key the lab wrote.
+        data = {
+            **data,
+            "inboxes": [
+                {**inbox, "criteria": merge_criteria(data["criteria"], inbox["criteria"])}
+                if isinstance(inbox, dict) and isinstance(inbox.get("criteria"), dict)
+                else inbox
+                for inbox in inboxes
+            ],
+        }
     try:
         config = AppConfig.model_validate(data)
     except ValidationError as error:
         raise ConfigError(f"{source}: {describe_validation_error(error)}") from None
-    try:
-        active_rules(config.criteria)  # a switched-off rule id must exist
-    except ConfigError as error:
-        raise ConfigError(f"{source}: {error}") from None
+    located = [("", config.criteria)] + [
+        (f"inboxes[{index}].", inbox.criteria)
+        for index, inbox in enumerate(config.inboxes)
+        if inbox.criteria is not None
+    ]
+    for where, criteria in located:
+        try:
+            active_rules(criteria)  # a switched-off rule id must exist
+        except ConfigError as error:
+            raise ConfigError(f"{source}: {where}{error}") from None
     return config
 
 
@@ -143,3 +185,116 @@ def load_config(path: Path | None) -> AppConfig:
     except (OSError, UnicodeDecodeError) as error:
         raise ConfigError(f"{path}: cannot read the configuration: {error}") from None
     return build_config(parse_yaml(text, str(path)), str(path))
+
+
+# --------------------------------------------------------------------------- the watch plan
+
+
+@dataclass(frozen=True, slots=True)
+class Inbox:
+    """One watched folder with everything resolved: where, what, how judged, where written."""
+
+    name: str
+    path: Path
+    out_dir: Path
+    patterns: tuple[str, ...]
+    ignore: tuple[str, ...]
+    recursive: bool
+    polling: bool
+    instrument: str | None
+    config: AppConfig  # the criteria and layout this inbox's files are judged with
+
+
+@dataclass(frozen=True, slots=True)
+class WatchPlan:
+    """What ``calwarden watch`` will do, after the file and the flags are combined."""
+
+    out: Path
+    state_dir: Path
+    settings: WatchSettings
+    inboxes: tuple[Inbox, ...]
+
+
+def _inside(inner: Path, outer: Path) -> bool:
+    return inner == outer or outer in inner.parents
+
+
+def plan_watch(
+    config: AppConfig,
+    *,
+    config_dir: Path | None = None,
+    inbox: Path | None = None,
+    out: Path | None = None,
+    settle_seconds: float | None = None,
+    polling: bool | None = None,
+) -> WatchPlan:
+    """Combine the configuration with the command line's flags; the flags win.
+
+    Relative paths in the file are relative to the file's folder. Refuses (as a
+    ConfigError) what would go wrong later: no inbox, a missing inbox folder, an
+    output folder inside an inbox (its own flagged CSVs would be judged).
+    """
+    base = config_dir or Path.cwd()
+    settings = config.watch
+    overrides: dict[str, object] = {}
+    if settle_seconds is not None:
+        overrides["settle_seconds"] = settle_seconds
+    if polling is not None:
+        overrides["polling"] = polling
+    if overrides:
+        try:
+            settings = WatchSettings.model_validate({**settings.model_dump(), **overrides})
+        except ValidationError as error:
+            raise ConfigError(f"command line: {describe_validation_error(error)}") from None
+
+    out_dir = out if out is not None else settings.out
+    if out_dir is None:
+        raise ConfigError("no output folder: give --out DIR, or watch.out in the configuration")
+    out_dir = (Path.cwd() / out) if out is not None else (base / out_dir)
+    out_dir = out_dir.resolve()
+    state_dir = (
+        (base / settings.state_dir).resolve() if settings.state_dir else out_dir / ".calwarden"
+    )
+
+    if inbox is not None:
+        declared = (InboxSettings(path=Path.cwd() / inbox),)
+    else:
+        declared = tuple(
+            entry.model_copy(update={"path": base / entry.path}) for entry in config.inboxes
+        )
+    if not declared:
+        raise ConfigError("no inbox to watch: give INBOX, or list inboxes in the configuration")
+
+    resolved = []
+    for entry in declared:
+        path = entry.path.resolve()
+        if not path.is_dir():
+            raise ConfigError(f"the inbox folder {path} does not exist (or is not a folder)")
+        if _inside(out_dir, path) or _inside(path, out_dir):
+            raise ConfigError(
+                f"the output folder {out_dir} and the inbox {path} overlap; keep them apart "
+                "so that calwarden never judges its own outputs"
+            )
+        name = entry.name or path.name
+        layout = entry.format or config.format
+        if entry.instrument and layout is not None and layout.instrument is None:
+            layout = layout.model_copy(update={"instrument": entry.instrument})
+        resolved.append(
+            Inbox(
+                name=name,
+                path=path,
+                out_dir=out_dir if len(declared) == 1 else out_dir / name,
+                patterns=entry.patterns or settings.patterns,
+                ignore=settings.ignore,
+                recursive=entry.recursive,
+                polling=settings.polling if entry.polling is None else entry.polling,
+                instrument=entry.instrument,
+                config=AppConfig(criteria=entry.criteria or config.criteria, format=layout),
+            )
+        )
+    paths = [item.path for item in resolved]
+    for index, path in enumerate(paths):
+        for other in paths[index + 1 :]:
+            if _inside(path, other) or _inside(other, path):
+                raise ConfigError(f"the inboxes {path} and {other} overlap")
+    return WatchPlan(out_dir, state_dir, settings, tuple(resolved))

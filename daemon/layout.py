@@ -1013,15 +1013,16 @@ def _fit(fields: Sequence[str], width: int, line: int, is_xlsx: bool) -> Sequenc
 
 
 def read_export(
-    path: Path, fmt: ExportFormat, *, max_bytes: int = MAX_FILE_BYTES
+    path: Path, fmt: ExportFormat, *, max_bytes: int = MAX_FILE_BYTES, data: bytes | None = None
 ) -> tuple[ParsedFile, Detected]:
     """Read an export from disk: hash its bytes, translate it and build its run.
 
     The size is checked before anything is read and the file is read once; the
     hash is of exactly the bytes parsed. The run is named after the ``run``
-    column, else ``fmt.run``, else the file's stem.
+    column, else ``fmt.run``, else the file's stem. ``data``: the bytes, already read.
     """
-    data = read_file_bytes(path, max_bytes)
+    if data is None:
+        data = read_file_bytes(path, max_bytes)
     table, detected = export_table(
         data, fmt, source=str(path), suffix=path.suffix, max_bytes=max_bytes
     )

@@ -98,6 +98,35 @@ def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
     return buffer.getvalue().encode("utf-8")
 
 
+#: The files of one evaluation, in the order they are written: the verdict last,
+#: because its presence says the other files of the evaluation are complete.
+OUTPUT_SUFFIXES = (".flagged.csv", ".report.txt", ".verdict.json")
+
+
+def output_files(
+    document: dict[str, Any], table: RawTable | None = None, verdict: Verdict | None = None
+) -> dict[str, bytes]:
+    """The bytes of each output file by suffix (no flagged copy for a file never read)."""
+    files: dict[str, bytes] = {}
+    if table is not None and verdict is not None:
+        files[".flagged.csv"] = flagged_csv(table, verdict)
+    files[".report.txt"] = render(document).encode("utf-8")
+    files[".verdict.json"] = (dump_verdict(document) + "\n").encode("utf-8")
+    return files
+
+
+def write_files(out_dir: Path, stem: str, files: dict[str, bytes]) -> list[Path]:
+    """Write ``<stem><suffix>`` for each file, atomically, in :data:`OUTPUT_SUFFIXES` order."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    written = []
+    for suffix in OUTPUT_SUFFIXES:
+        if suffix in files:
+            path = out_dir / f"{stem}{suffix}"
+            atomic_write(path, files[suffix])
+            written.append(path)
+    return written
+
+
 def write_outputs(
     out_dir: Path,
     stem: str,
@@ -106,17 +135,13 @@ def write_outputs(
     verdict: Verdict | None = None,
 ) -> list[Path]:
     """Write the verdict JSON, the report and (when the file was read) the flagged copy."""
-    out_dir.mkdir(parents=True, exist_ok=True)
-    written = []
-    if table is not None and verdict is not None:
-        flagged = out_dir / f"{stem}.flagged.csv"
-        atomic_write(flagged, flagged_csv(table, verdict))
-        written.append(flagged)
-    report = out_dir / f"{stem}.report.txt"
-    atomic_write(report, render(document).encode("utf-8"))
-    written.append(report)
-    # The verdict last: its presence says the other files of this evaluation are complete.
-    verdict_path = out_dir / f"{stem}.verdict.json"
-    atomic_write(verdict_path, (dump_verdict(document) + "\n").encode("utf-8"))
-    written.append(verdict_path)
-    return written
+    return write_files(out_dir, stem, output_files(document, table, verdict))
+
+
+def is_leftover_temporary(name: str) -> bool:
+    """A temporary file :func:`atomic_write` leaves behind only when the process is killed."""
+    return (
+        name.startswith(".")
+        and name.endswith(".tmp")
+        and any(f"{suffix}." in name for suffix in OUTPUT_SUFFIXES)
+    )

@@ -6,13 +6,14 @@ a file is judged the same way whichever way it arrives.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from daemon.config import AppConfig
-from daemon.reader import RawTable, read_native
+from daemon.reader import MAX_FILE_BYTES, RawTable, read_native
 from daemon.verdict_json import verdict_to_json
 from rules.errors import InputError
 from rules.evaluate import evaluate
@@ -40,32 +41,62 @@ def _file_sha256(path: Path) -> str | None:
         return None
 
 
-def error_document(path: Path, message: str, criteria_sha256: str | None) -> dict[str, Any]:
+def error_document(
+    path: Path,
+    message: str,
+    criteria_sha256: str | None,
+    *,
+    data: bytes | None = None,
+    instrument: str | None = None,
+) -> dict[str, Any]:
     """The verdict JSON of a file that could not be evaluated."""
-    verdict = Verdict(Status.ERROR, path.stem, None, (), (), (), error=message)
+    verdict = Verdict(Status.ERROR, path.stem, instrument, (), (), (), error=message)
+    sha256 = hashlib.sha256(data).hexdigest() if data is not None else _file_sha256(path)
     return verdict_to_json(
-        verdict, source_path=str(path), sha256=_file_sha256(path), criteria_sha256=criteria_sha256
+        verdict, source_path=str(path), sha256=sha256, criteria_sha256=criteria_sha256
     )
 
 
-def judge_file(path: Path, config: AppConfig, *, summary_only: bool = False) -> Judgement:
+def judge_file(
+    path: Path,
+    config: AppConfig,
+    *,
+    summary_only: bool = False,
+    data: bytes | None = None,
+    instrument: str | None = None,
+) -> Judgement:
     """Judge one file; broken input gives an ``error`` verdict, never an exception.
 
     ``summary_only`` leaves the document's ``results`` empty (for the terminal summary).
+    ``data`` is the file's bytes when the caller has read them already (so the
+    hash recorded is of exactly what was judged). ``instrument`` names the
+    instrument of a run whose file does not.
 
     A ConfigError (e.g. a disabled rule id that does not exist) propagates:
     it is the configuration's fault, not the file's.
     """
     criteria_sha256 = config.criteria.digest()
     try:
+        if data is not None and len(data) > MAX_FILE_BYTES:
+            raise InputError(
+                f"the file is too large to be a run: {len(data)} bytes, the limit is "
+                f"{MAX_FILE_BYTES}"
+            )
         if config.format is None:
-            parsed = read_native(path)
+            parsed = read_native(path, data=data)
         else:
             from daemon.layout import read_export  # only configurations with a layout need it
 
-            parsed, _ = read_export(path, config.format)
+            parsed, _ = read_export(path, config.format, data=data)
     except InputError as error:
-        return Judgement(error_document(path, str(error), criteria_sha256), None, None)
+        document = error_document(
+            path, str(error), criteria_sha256, data=data, instrument=instrument
+        )
+        return Judgement(document, None, None)
+    if instrument is not None and parsed.run.instrument is None:
+        parsed = dataclasses.replace(
+            parsed, run=dataclasses.replace(parsed.run, instrument=instrument)
+        )
     verdict = evaluate(parsed.run, config.criteria)
     document = verdict_to_json(
         verdict,

@@ -427,14 +427,18 @@ def read_file_bytes(path: Path, max_bytes: int = MAX_FILE_BYTES) -> bytes:
         raise InputError(f"cannot read {path}: {exc.strerror or exc}") from None
 
 
-def read_native(path: Path, *, max_bytes: int = MAX_FILE_BYTES) -> ParsedFile:
+def read_native(
+    path: Path, *, max_bytes: int = MAX_FILE_BYTES, data: bytes | None = None
+) -> ParsedFile:
     """Read a native file from disk: hash its bytes, split it and build its run.
 
     The size is checked before anything is read, and the file is read once; the
     hash is of exactly the bytes parsed. The run is named after the ``run``
-    column when the file has one, else after the file's stem.
+    column when the file has one, else after the file's stem. ``data``, when
+    given, is the file's bytes already read (the watcher hashes what it judges).
     """
-    data = read_file_bytes(path, max_bytes)
+    if data is None:
+        data = read_file_bytes(path, max_bytes)
     table = decode_table(data, source=str(path), max_bytes=max_bytes)
     run = normalise(table, run_name=path.stem)
     return ParsedFile(path, hashlib.sha256(data).hexdigest(), table, run)

@@ -1,0 +1,249 @@
+"""One settled file into the ledger and the output folder, exactly once.
+
+The order of the steps is what makes a crash at any instant harmless:
+
+1. the file's bytes are hashed; content already judged is not judged again;
+2. the file is judged from exactly those bytes;
+3. when it is a new version of a known file, the earlier version's outputs are
+   written under a suffixed name from the ledger's copy of them;
+4. its outputs are written, each atomically, the verdict JSON last;
+5. the evaluation is recorded in the ledger, durably.
+
+A crash before step 5 leaves the file unrecorded, so the next start judges
+it again and writes the same outputs over the old ones; a crash after it
+leaves a complete record. Either way every file ends with one current
+verdict. The input file is only ever read.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path, PurePosixPath
+from typing import Any
+
+import structlog
+
+from daemon.config import AppConfig, Inbox
+from daemon.ledger import Evaluation, Ledger, NewEvaluation, Seen
+from daemon.outputs import output_files, write_files
+from daemon.pipeline import Judgement, error_document, judge_file
+from daemon.report import render
+from daemon.verdict_json import calwarden_version
+
+log = structlog.get_logger("calwarden")
+
+#: Suffix of an earlier version's outputs: ``run-07@v1.verdict.json``.
+VERSION_MARK = "@v"
+
+
+class OutputError(Exception):
+    """The output folder cannot be written (full, gone, no permission): a daemon fault."""
+
+
+@dataclass(frozen=True, slots=True)
+class Outcome:
+    """What became of one settled file."""
+
+    inbox: str
+    path: str  # in the inbox, with '/' separators
+    status: str  # pass | fail | error | duplicate | unchanged
+    sha256: str
+    run: str | None = None
+    instrument: str | None = None
+    failures: int = 0
+    warnings: int = 0
+    message: str | None = None
+    verdict_path: Path | None = None
+    version: int = 0
+    duplicate_of: str | None = None
+    reruns: int = 0
+
+
+def config_digest(config: AppConfig) -> str:
+    """SHA-256 of everything that decides a verdict: the criteria and the layout."""
+    canonical = json.dumps(
+        {
+            "criteria": config.criteria.model_dump(mode="json"),
+            "format": None if config.format is None else config.format.model_dump(mode="json"),
+        },
+        sort_keys=True,
+        separators=(",", ":"),
+    )
+    return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+
+
+def _first_failure(document: dict[str, Any]) -> str | None:
+    if document.get("error"):
+        return str(document["error"])
+    for finding in document.get("findings", []):
+        if finding.get("severity") == "fail":
+            return str(finding.get("message"))
+    return None
+
+
+def _count(document: dict[str, Any], severity: str) -> int:
+    return sum(1 for finding in document.get("findings", []) if finding.get("severity") == severity)
+
+
+def _now() -> str:
+    return datetime.now(UTC).isoformat(timespec="milliseconds")
+
+
+class Intake:
+    """Judges settled files of the watched inboxes; owns the ledger's writing connection."""
+
+    def __init__(self, ledger: Ledger, inboxes: tuple[Inbox, ...]) -> None:
+        self.ledger = ledger
+        self._digests = {inbox.name: config_digest(inbox.config) for inbox in inboxes}
+
+    def process(self, inbox: Inbox, path: Path, data: bytes, size: int, mtime_ns: int) -> Outcome:
+        """Record one settled file: unchanged, duplicate, or judged and written."""
+        relative = path.relative_to(inbox.path).as_posix()
+        sha256 = hashlib.sha256(data).hexdigest()
+        seen = Seen(size, mtime_ns, sha256)
+        previous_state = self.ledger.seen(inbox.name, relative)
+        if previous_state is not None and previous_state.sha256 == sha256:
+            self.ledger.touch(inbox.name, relative, seen)
+            return Outcome(inbox.name, relative, "unchanged", sha256)
+
+        original = self.ledger.judged_content(inbox.name, sha256)
+        if original is not None:
+            self.ledger.record_duplicate(
+                inbox.name,
+                relative,
+                seen,
+                original,
+                calwarden_version=calwarden_version(),
+                evaluated_at=_now(),
+            )
+            log.info(
+                "file_duplicate",
+                inbox=inbox.name,
+                path=relative,
+                sha256=sha256,
+                duplicate_of=original.path,
+            )
+            return Outcome(
+                inbox.name,
+                relative,
+                "duplicate",
+                sha256,
+                run=original.run,
+                instrument=original.instrument,
+                duplicate_of=original.path,
+            )
+        return self._judge(inbox, path, relative, data, seen)
+
+    def _output_stem(self, inbox: Inbox, relative: str) -> str:
+        """Where this file's outputs go, relative to the inbox's output folder."""
+        pure = PurePosixPath(relative)
+        stem = pure.with_suffix("").as_posix()
+        owner = self.ledger.stem_owner(inbox.name, stem)
+        if VERSION_MARK in pure.name or (owner is not None and owner != relative):
+            # ``run.csv`` and ``run.txt`` both judged, or a name that looks like an
+            # earlier version's: keep the whole name so that no verdict overwrites another.
+            stem = pure.as_posix()
+        return stem
+
+    def _judge(self, inbox: Inbox, path: Path, relative: str, data: bytes, seen: Seen) -> Outcome:
+        previous = self.ledger.current(inbox.name, relative)
+        version = 1 if previous is None else previous.version + 1
+        judgement = self._judgement(inbox, path, data)
+        document = judgement.document
+        stem = self._output_stem(inbox, relative) if previous is None else previous.output_stem
+        assert stem is not None
+        out_folder = inbox.out_dir / PurePosixPath(stem).parent
+        name = PurePosixPath(stem).name
+        try:
+            if previous is not None:
+                self._archive(inbox, previous, out_folder, name)
+            files = output_files(document, judgement.table, judgement.verdict)
+            write_files(out_folder, name, files)
+        except OSError as error:
+            raise OutputError(f"cannot write the outputs in {out_folder}: {error}") from error
+        status = str(document["status"])
+        message = _first_failure(document)
+        self.ledger.record_evaluation(
+            NewEvaluation(
+                inbox=inbox.name,
+                path=relative,
+                sha256=seen.sha256,
+                size=seen.size,
+                mtime_ns=seen.mtime_ns,
+                outcome=status,
+                version=version,
+                output_stem=stem,
+                run=document.get("run"),
+                instrument=document.get("instrument"),
+                failures=_count(document, "fail"),
+                warnings=_count(document, "warning"),
+                message=message,
+                criteria_sha256=document.get("criteria_sha256"),
+                config_sha256=self._digests.get(inbox.name),
+                calwarden_version=str(document["calwarden_version"]),
+                evaluated_at=_now(),
+                document=files[".verdict.json"],
+                flagged=files.get(".flagged.csv"),
+            )
+        )
+        verdict_path = out_folder / f"{name}.verdict.json"
+        log.info(
+            "file_evaluated",
+            inbox=inbox.name,
+            path=relative,
+            sha256=seen.sha256,
+            status=status,
+            run=document.get("run"),
+            instrument=document.get("instrument"),
+            version=version,
+            failures=_count(document, "fail"),
+            warnings=_count(document, "warning"),
+            reason=message,
+            criteria_sha256=document.get("criteria_sha256"),
+            config_sha256=self._digests.get(inbox.name),
+            calwarden_version=document["calwarden_version"],
+            verdict=str(verdict_path),
+        )
+        return Outcome(
+            inbox.name,
+            relative,
+            status,
+            seen.sha256,
+            run=document.get("run"),
+            instrument=document.get("instrument"),
+            failures=_count(document, "fail"),
+            warnings=_count(document, "warning"),
+            message=message,
+            verdict_path=verdict_path,
+            version=version,
+            reruns=len(document.get("reruns", [])),
+        )
+
+    def _judgement(self, inbox: Inbox, path: Path, data: bytes) -> Judgement:
+        try:
+            return judge_file(path, inbox.config, data=data, instrument=inbox.instrument)
+        except Exception as error:  # a bug of ours still gives this file a verdict
+            message = f"internal error while judging the file ({type(error).__name__}: {error})"
+            log.error("judge_crashed", path=str(path), error=repr(error))
+            document = error_document(
+                path,
+                message,
+                inbox.config.criteria.digest(),
+                data=data,
+                instrument=inbox.instrument,
+            )
+            return Judgement(document, None, None)
+
+    def _archive(self, inbox: Inbox, previous: Evaluation, out_folder: Path, name: str) -> None:
+        """Write the previous version's outputs under ``<name>@v<version>``, from the ledger."""
+        document_bytes, flagged = self.ledger.outputs_of(previous.id)
+        files = {
+            ".report.txt": render(json.loads(document_bytes)).encode("utf-8"),
+            ".verdict.json": document_bytes,
+        }
+        if flagged is not None:
+            files[".flagged.csv"] = flagged
+        write_files(out_folder, f"{name}{VERSION_MARK}{previous.version}", files)

@@ -1,0 +1,372 @@
+"""The ledger: a SQLite file recording every file the daemon has judged.
+
+It is what makes "each file judged exactly once" true across restarts and
+crashes. A file is keyed on its inbox, its path in the inbox and the SHA-256 of
+its bytes:
+
+* the same content at the same path (a file touched, or seen again by a
+  rescan) is nothing new;
+* the same content under another name is recorded as a *duplicate* of the
+  first, and not judged again;
+* new content at a known path is a new *version*: judged again, the earlier
+  verdict kept under a suffixed name.
+
+Each evaluation's verdict JSON and flagged copy are kept in the ledger too
+(compressed), so an earlier version's outputs can always be written again
+from the ledger, whatever state a crash left the output folder in.
+
+One connection writes (the daemon's worker thread); WAL mode lets
+``calwarden status`` read at the same time. Writes use ``BEGIN IMMEDIATE`` and
+the commit that records an evaluation is made with ``synchronous=FULL``.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+import zlib
+from collections.abc import Iterator
+from contextlib import contextmanager, suppress
+from dataclasses import dataclass
+from pathlib import Path
+
+SCHEMA_VERSION = 1
+LEDGER_NAME = "ledger.sqlite3"
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (
+    key TEXT PRIMARY KEY,
+    value TEXT NOT NULL
+);
+-- The last state of every file seen, so that a rescan skips what has not changed
+-- without reading it again.
+CREATE TABLE IF NOT EXISTS seen (
+    inbox TEXT NOT NULL,
+    path TEXT NOT NULL,
+    size INTEGER NOT NULL,
+    mtime_ns INTEGER NOT NULL,
+    sha256 TEXT NOT NULL,
+    PRIMARY KEY (inbox, path)
+);
+-- One row per judgement (or per duplicate found): the audit trail.
+CREATE TABLE IF NOT EXISTS evaluations (
+    id INTEGER PRIMARY KEY,
+    inbox TEXT NOT NULL,
+    path TEXT NOT NULL,
+    sha256 TEXT NOT NULL,
+    size INTEGER NOT NULL,
+    outcome TEXT NOT NULL CHECK (outcome IN ('pass', 'fail', 'error', 'duplicate')),
+    duplicate_of INTEGER REFERENCES evaluations (id),
+    version INTEGER NOT NULL,
+    output_stem TEXT,
+    run TEXT,
+    instrument TEXT,
+    failures INTEGER NOT NULL DEFAULT 0,
+    warnings INTEGER NOT NULL DEFAULT 0,
+    message TEXT,
+    criteria_sha256 TEXT,
+    config_sha256 TEXT,
+    calwarden_version TEXT NOT NULL,
+    evaluated_at TEXT NOT NULL,
+    document BLOB,
+    flagged BLOB
+);
+CREATE UNIQUE INDEX IF NOT EXISTS one_judgement_per_content
+    ON evaluations (inbox, sha256) WHERE outcome != 'duplicate';
+CREATE INDEX IF NOT EXISTS evaluations_by_path ON evaluations (inbox, path, version);
+CREATE INDEX IF NOT EXISTS evaluations_by_stem ON evaluations (inbox, output_stem);
+"""
+
+
+class LedgerError(Exception):
+    """The ledger cannot be opened or written: the daemon cannot go on safely."""
+
+
+@dataclass(frozen=True, slots=True)
+class Seen:
+    size: int
+    mtime_ns: int
+    sha256: str
+
+
+@dataclass(frozen=True, slots=True)
+class Evaluation:
+    """One row of the ledger's audit trail."""
+
+    id: int
+    inbox: str
+    path: str
+    sha256: str
+    outcome: str
+    version: int
+    output_stem: str | None
+    run: str | None
+    instrument: str | None
+    failures: int
+    warnings: int
+    message: str | None
+    evaluated_at: str
+    duplicate_of: int | None
+
+
+@dataclass(frozen=True, slots=True)
+class NewEvaluation:
+    """What the daemon records about one judged file."""
+
+    inbox: str
+    path: str
+    sha256: str
+    size: int
+    mtime_ns: int
+    outcome: str
+    version: int
+    output_stem: str
+    run: str | None
+    instrument: str | None
+    failures: int
+    warnings: int
+    message: str | None
+    criteria_sha256: str | None
+    config_sha256: str | None
+    calwarden_version: str
+    evaluated_at: str
+    document: bytes
+    flagged: bytes | None
+
+
+_COLUMNS = (
+    "id, inbox, path, sha256, outcome, version, output_stem, run, instrument, "
+    "failures, warnings, message, evaluated_at, duplicate_of"
+)
+
+
+def _evaluation(row: tuple[object, ...] | None) -> Evaluation | None:
+    return None if row is None else Evaluation(*row)  # type: ignore[arg-type]
+
+
+def compress(data: bytes) -> bytes:
+    return zlib.compress(data, 6)
+
+
+def decompress(data: bytes) -> bytes:
+    return zlib.decompress(data)
+
+
+class Ledger:
+    """The daemon's single writing connection to the ledger."""
+
+    def __init__(self, path: Path, *, read_only: bool = False) -> None:
+        self.path = path
+        try:
+            if read_only:
+                self._db = sqlite3.connect(
+                    f"{path.as_uri()}?mode=ro", uri=True, isolation_level=None, timeout=5
+                )
+            else:
+                path.parent.mkdir(parents=True, exist_ok=True)
+                # Autocommit mode: every transaction is opened explicitly below.
+                self._db = sqlite3.connect(path, isolation_level=None, timeout=30)
+                self._db.execute("PRAGMA journal_mode=WAL")
+                self._db.execute("PRAGMA foreign_keys=ON")
+                self._db.execute("PRAGMA synchronous=NORMAL")
+                with self._write():
+                    for statement in _SCHEMA.split(";"):
+                        if statement.strip():
+                            self._db.execute(statement)
+                    self._db.execute(
+                        "INSERT OR IGNORE INTO meta (key, value) VALUES ('schema_version', ?)",
+                        (str(SCHEMA_VERSION),),
+                    )
+                found = self.meta("schema_version")
+                if found != str(SCHEMA_VERSION):
+                    raise LedgerError(
+                        f"{path}: ledger schema {found}, this calwarden knows {SCHEMA_VERSION}"
+                    )
+        except sqlite3.Error as error:
+            raise LedgerError(f"{path}: cannot open the ledger: {error}") from None
+
+    def close(self) -> None:
+        self._db.close()
+
+    @contextmanager
+    def _write(self, *, durable: bool = False) -> Iterator[None]:
+        """One write transaction; ``durable`` commits with ``synchronous=FULL``."""
+        try:
+            if durable:
+                self._db.execute("PRAGMA synchronous=FULL")
+            self._db.execute("BEGIN IMMEDIATE")
+            try:
+                yield
+            except BaseException:
+                self._db.execute("ROLLBACK")
+                raise
+            self._db.execute("COMMIT")
+        except sqlite3.Error as error:
+            raise LedgerError(f"{self.path}: cannot write the ledger: {error}") from None
+        finally:
+            if durable:
+                with suppress(sqlite3.Error):
+                    self._db.execute("PRAGMA synchronous=NORMAL")
+
+    def _one(self, sql: str, parameters: tuple[object, ...]) -> tuple[object, ...] | None:
+        try:
+            row: tuple[object, ...] | None = self._db.execute(sql, parameters).fetchone()
+        except sqlite3.Error as error:
+            raise LedgerError(f"{self.path}: cannot read the ledger: {error}") from None
+        return row
+
+    def meta(self, key: str) -> str | None:
+        row = self._one("SELECT value FROM meta WHERE key = ?", (key,))
+        return None if row is None else str(row[0])
+
+    # ------------------------------------------------------------------ queries
+
+    def seen(self, inbox: str, path: str) -> Seen | None:
+        """The last recorded size, mtime and hash of a file, or None if never judged."""
+        row = self._one(
+            "SELECT size, mtime_ns, sha256 FROM seen WHERE inbox = ? AND path = ?", (inbox, path)
+        )
+        return None if row is None else Seen(*row)  # type: ignore[arg-type]
+
+    def judged_content(self, inbox: str, sha256: str) -> Evaluation | None:
+        """The evaluation that judged this content in this inbox, if any."""
+        return _evaluation(
+            self._one(
+                f"SELECT {_COLUMNS} FROM evaluations "
+                "WHERE inbox = ? AND sha256 = ? AND outcome != 'duplicate'",
+                (inbox, sha256),
+            )
+        )
+
+    def current(self, inbox: str, path: str) -> Evaluation | None:
+        """The latest judgement of the file at this path (duplicates are not judgements)."""
+        return _evaluation(
+            self._one(
+                f"SELECT {_COLUMNS} FROM evaluations WHERE inbox = ? AND path = ? "
+                "AND outcome != 'duplicate' ORDER BY version DESC LIMIT 1",
+                (inbox, path),
+            )
+        )
+
+    def stem_owner(self, inbox: str, output_stem: str) -> str | None:
+        """The path whose outputs are written under this stem, if any."""
+        row = self._one(
+            "SELECT path FROM evaluations WHERE inbox = ? AND output_stem = ? LIMIT 1",
+            (inbox, output_stem),
+        )
+        return None if row is None else str(row[0])
+
+    def outputs_of(self, evaluation_id: int) -> tuple[bytes, bytes | None]:
+        """The verdict JSON and flagged copy an evaluation wrote, as bytes."""
+        row = self._one("SELECT document, flagged FROM evaluations WHERE id = ?", (evaluation_id,))
+        if row is None or row[0] is None:
+            raise LedgerError(f"{self.path}: evaluation {evaluation_id} has no stored verdict")
+        document, flagged = row
+        assert isinstance(document, bytes)
+        return decompress(document), (decompress(flagged) if isinstance(flagged, bytes) else None)
+
+    def counts(self) -> dict[str, int]:
+        """How many judgements of each outcome, and how many duplicates."""
+        try:
+            rows = self._db.execute(
+                "SELECT outcome, COUNT(*) FROM evaluations GROUP BY outcome"
+            ).fetchall()
+        except sqlite3.Error as error:
+            raise LedgerError(f"{self.path}: cannot read the ledger: {error}") from None
+        counts = {"pass": 0, "fail": 0, "error": 0, "duplicate": 0}
+        counts.update({str(outcome): int(number) for outcome, number in rows})
+        return counts
+
+    def latest(self, *, outcome: str | None = None, limit: int = 1) -> list[Evaluation]:
+        """The most recent evaluations, newest first; ``outcome`` filters them."""
+        where, parameters = ("WHERE outcome = ?", (outcome,)) if outcome else ("", ())
+        try:
+            rows = self._db.execute(
+                f"SELECT {_COLUMNS} FROM evaluations {where} ORDER BY id DESC LIMIT ?",
+                (*parameters, limit),
+            ).fetchall()
+        except sqlite3.Error as error:
+            raise LedgerError(f"{self.path}: cannot read the ledger: {error}") from None
+        return [Evaluation(*row) for row in rows]
+
+    def integrity(self) -> str:
+        row = self._one("PRAGMA integrity_check", ())
+        return "" if row is None else str(row[0])
+
+    # ------------------------------------------------------------------ writes
+
+    def touch(self, inbox: str, path: str, seen: Seen) -> None:
+        """Record a file's new size and mtime when its content has not changed."""
+        with self._write():
+            self._upsert_seen(inbox, path, seen)
+
+    def _upsert_seen(self, inbox: str, path: str, seen: Seen) -> None:
+        self._db.execute(
+            "INSERT INTO seen (inbox, path, size, mtime_ns, sha256) VALUES (?, ?, ?, ?, ?) "
+            "ON CONFLICT (inbox, path) DO UPDATE SET size = excluded.size, "
+            "mtime_ns = excluded.mtime_ns, sha256 = excluded.sha256",
+            (inbox, path, seen.size, seen.mtime_ns, seen.sha256),
+        )
+
+    def record_duplicate(
+        self,
+        inbox: str,
+        path: str,
+        seen: Seen,
+        original: Evaluation,
+        *,
+        calwarden_version: str,
+        evaluated_at: str,
+    ) -> int:
+        """Record a file whose content was already judged under another name."""
+        with self._write(durable=True):
+            cursor = self._db.execute(
+                "INSERT INTO evaluations (inbox, path, sha256, size, outcome, duplicate_of, "
+                "version, run, instrument, message, calwarden_version, evaluated_at) "
+                "VALUES (?, ?, ?, ?, 'duplicate', ?, 0, ?, ?, ?, ?, ?)",
+                (
+                    inbox,
+                    path,
+                    seen.sha256,
+                    seen.size,
+                    original.id,
+                    original.run,
+                    original.instrument,
+                    f"same content as {original.path}",
+                    calwarden_version,
+                    evaluated_at,
+                ),
+            )
+            self._upsert_seen(inbox, path, seen)
+        return int(cursor.lastrowid or 0)
+
+    def record_evaluation(self, new: NewEvaluation) -> int:
+        """Record a judgement, durably, with the state of the file it judged."""
+        with self._write(durable=True):
+            cursor = self._db.execute(
+                "INSERT INTO evaluations (inbox, path, sha256, size, outcome, version, "
+                "output_stem, run, instrument, failures, warnings, message, criteria_sha256, "
+                "config_sha256, calwarden_version, evaluated_at, document, flagged) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (
+                    new.inbox,
+                    new.path,
+                    new.sha256,
+                    new.size,
+                    new.outcome,
+                    new.version,
+                    new.output_stem,
+                    new.run,
+                    new.instrument,
+                    new.failures,
+                    new.warnings,
+                    new.message,
+                    new.criteria_sha256,
+                    new.config_sha256,
+                    new.calwarden_version,
+                    new.evaluated_at,
+                    compress(new.document),
+                    None if new.flagged is None else compress(new.flagged),
+                ),
+            )
+            self._upsert_seen(new.inbox, new.path, Seen(new.size, new.mtime_ns, new.sha256))
+        return int(cursor.lastrowid or 0)
