@@ -257,7 +257,7 @@ def plan_watch(
     )
 
     if inbox is not None:
-        declared = (InboxSettings(path=Path.cwd() / inbox),)
+        declared: tuple[InboxSettings, ...] = (InboxSettings(path=Path.cwd() / inbox),)
     else:
         declared = tuple(
             entry.model_copy(update={"path": base / entry.path}) for entry in config.inboxes

@@ -99,10 +99,21 @@ class Intake:
         self.ledger = ledger
         self._digests = {inbox.name: config_digest(inbox.config) for inbox in inboxes}
 
-    def process(self, inbox: Inbox, path: Path, data: bytes, size: int, mtime_ns: int) -> Outcome:
-        """Record one settled file: unchanged, duplicate, or judged and written."""
+    def process(
+        self,
+        inbox: Inbox,
+        path: Path,
+        data: bytes | None,
+        sha256: str,
+        size: int,
+        mtime_ns: int,
+    ) -> Outcome:
+        """Record one settled file: unchanged, duplicate, or judged and written.
+
+        ``data`` is the file's bytes (None for a file too large to load, which
+        is judged as too large), ``sha256`` their hash.
+        """
         relative = path.relative_to(inbox.path).as_posix()
-        sha256 = hashlib.sha256(data).hexdigest()
         seen = Seen(size, mtime_ns, sha256)
         previous_state = self.ledger.seen(inbox.name, relative)
         if previous_state is not None and previous_state.sha256 == sha256:
@@ -148,7 +159,9 @@ class Intake:
             stem = pure.as_posix()
         return stem
 
-    def _judge(self, inbox: Inbox, path: Path, relative: str, data: bytes, seen: Seen) -> Outcome:
+    def _judge(
+        self, inbox: Inbox, path: Path, relative: str, data: bytes | None, seen: Seen
+    ) -> Outcome:
         previous = self.ledger.current(inbox.name, relative)
         version = 1 if previous is None else previous.version + 1
         judgement = self._judgement(inbox, path, data)
@@ -222,7 +235,7 @@ class Intake:
             reruns=len(document.get("reruns", [])),
         )
 
-    def _judgement(self, inbox: Inbox, path: Path, data: bytes) -> Judgement:
+    def _judgement(self, inbox: Inbox, path: Path, data: bytes | None) -> Judgement:
         try:
             return judge_file(path, inbox.config, data=data, instrument=inbox.instrument)
         except Exception as error:  # a bug of ours still gives this file a verdict

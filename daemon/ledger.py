@@ -159,12 +159,18 @@ class Ledger:
         try:
             if read_only:
                 self._db = sqlite3.connect(
-                    f"{path.as_uri()}?mode=ro", uri=True, isolation_level=None, timeout=5
+                    f"{path.as_uri()}?mode=ro",
+                    uri=True,
+                    isolation_level=None,
+                    timeout=5,
                 )
             else:
                 path.parent.mkdir(parents=True, exist_ok=True)
                 # Autocommit mode: every transaction is opened explicitly below.
-                self._db = sqlite3.connect(path, isolation_level=None, timeout=30)
+                # Opened by the starting thread, then used by the worker thread only.
+                self._db = sqlite3.connect(
+                    path, isolation_level=None, timeout=30, check_same_thread=False
+                )
                 self._db.execute("PRAGMA journal_mode=WAL")
                 self._db.execute("PRAGMA foreign_keys=ON")
                 self._db.execute("PRAGMA synchronous=NORMAL")

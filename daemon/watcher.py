@@ -1,0 +1,466 @@
+"""The watcher: notices every export the moment it is complete and judges it once.
+
+Folder events are hints, never "file ready". The observer's handler only puts
+a path on a queue; one worker thread does everything else:
+
+* a path becomes a *candidate*, and is judged once its size and modification
+  time have not changed for the settle time and it opens for reading (a file
+  another program holds locked, as Windows reports while the instrument still
+  writes, is tried again with backoff);
+* at start-up and every ``rescan_seconds`` each inbox is compared with the
+  ledger, which catches files that landed while the daemon was down and
+  events the operating system dropped (inotify and ReadDirectoryChangesW drop
+  events silently when their buffers overflow);
+* the observer is checked every few seconds and restarted, with a rescan, if
+  it died;
+* delete events are ignored: the raw data belongs to the lab, and a verdict
+  stays when its file goes.
+
+The worker is the ledger's only writer. A fault it cannot recover from (the
+ledger or the output folder unwritable, the disk full) stops it with
+:attr:`Watcher.fault` set; the command line then exits non-zero so that the
+service manager restarts the daemon.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import hashlib
+import heapq
+import itertools
+import os
+import queue
+import stat
+import threading
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import structlog
+from watchdog.events import FileSystemEvent, FileSystemEventHandler
+from watchdog.observers import Observer
+from watchdog.observers.api import BaseObserver
+from watchdog.observers.polling import PollingObserver
+
+from daemon.config import Inbox, WatchPlan
+from daemon.intake import Intake, Outcome, OutputError
+from daemon.ledger import LEDGER_NAME, Ledger, LedgerError
+from daemon.lock import StateLock
+from daemon.outputs import is_leftover_temporary
+from daemon.reader import MAX_FILE_BYTES
+from daemon.verdict_json import calwarden_version
+
+log = structlog.get_logger("calwarden")
+
+_HINT_EVENTS = frozenset({"created", "modified", "moved", "closed"})
+_MAX_WAIT = 1.0  # seconds the worker sleeps at most, so that a stop is seen promptly
+_LOCKED_BACKOFF_CAP = 30.0
+_UNREADABLE_ATTEMPTS = 5
+
+
+class StartError(Exception):
+    """The daemon cannot start: the state folder is locked or cannot be opened."""
+
+
+@dataclass(slots=True)
+class _Candidate:
+    inbox: Inbox
+    path: Path
+    size: int
+    mtime_ns: int
+    attempts: int = 0
+
+
+@dataclass(order=True, slots=True)
+class _Due:
+    when: float
+    order: int
+    path: Path = field(compare=False)
+
+
+class _Hints(FileSystemEventHandler):
+    """Turns folder events into paths on the worker's queue; never does more."""
+
+    def __init__(self, inbox: int, hints: queue.Queue[tuple[int, str] | None]) -> None:
+        self._inbox = inbox
+        self._hints = hints
+
+    def on_any_event(self, event: FileSystemEvent) -> None:
+        try:
+            if event.event_type not in _HINT_EVENTS:
+                return  # deletes are never acted on; our own reads raise "opened"/"closed_no_write"
+            path = event.dest_path if event.event_type == "moved" else event.src_path
+            self._hints.put((self._inbox, os.fsdecode(path)))
+        except Exception as error:  # a handler that raises would kill the observer thread
+            log.error("event_handler_failed", error=repr(error))
+
+
+def _matches(name: str, patterns: tuple[str, ...]) -> bool:
+    folded = name.casefold()
+    return any(fnmatch.fnmatchcase(folded, pattern.casefold()) for pattern in patterns)
+
+
+def _file_sha256(path: Path) -> str:
+    with path.open("rb") as stream:
+        return hashlib.file_digest(stream, "sha256").hexdigest()
+
+
+class Watcher:
+    """Watches the inboxes of a :class:`WatchPlan` until :meth:`stop`."""
+
+    def __init__(
+        self, plan: WatchPlan, *, on_outcome: Callable[[Outcome], None] | None = None
+    ) -> None:
+        self.plan = plan
+        self.settings = plan.settings
+        self.fault: str | None = None
+        self.outcomes = 0  # files settled and recorded (judged, duplicate or unchanged)
+        self._on_outcome = on_outcome
+        self._hints: queue.Queue[tuple[int, str] | None] = queue.Queue()
+        self._stop = threading.Event()
+        self._finished = threading.Event()
+        self._idle = threading.Event()
+        self._candidates: dict[Path, _Candidate] = {}
+        self._due: list[_Due] = []
+        self._order = itertools.count()
+        self._observers: list[BaseObserver] = []
+        self._lock = StateLock(plan.state_dir)
+        self._ledger: Ledger | None = None
+        self._thread: threading.Thread | None = None
+        self._unreachable: set[str] = set()
+
+    # ------------------------------------------------------------------ life cycle
+
+    def start(self) -> None:
+        """Take the state folder's lock, open the ledger and start watching."""
+        from daemon.lock import StateLocked
+
+        try:
+            self._lock.acquire()
+        except StateLocked as error:
+            raise StartError(str(error)) from None
+        except OSError as error:
+            raise StartError(
+                f"cannot use the state folder {self.plan.state_dir}: {error}"
+            ) from None
+        try:
+            ledger = Ledger(self.plan.state_dir / LEDGER_NAME)
+        except LedgerError as error:
+            self._lock.release()
+            raise StartError(str(error)) from None
+        self._ledger = ledger
+        self._intake = Intake(ledger, self.plan.inboxes)
+        log.info(
+            "daemon_started",
+            pid=os.getpid(),
+            calwarden_version=calwarden_version(),
+            out=str(self.plan.out),
+            state_dir=str(self.plan.state_dir),
+            inboxes=[str(inbox.path) for inbox in self.plan.inboxes],
+            settle_seconds=self.settings.settle_seconds,
+            polling=[inbox.polling for inbox in self.plan.inboxes],
+        )
+        self._thread = threading.Thread(target=self._run, name="calwarden-worker", daemon=True)
+        self._thread.start()
+
+    def stop(self, timeout: float = 10.0) -> None:
+        """Finish (or safely abandon) the file in hand, close the ledger, stop every thread."""
+        self._stop.set()
+        self._hints.put(None)  # wake the worker
+        if self._thread is not None:
+            self._thread.join(timeout)
+
+    def wait(self, timeout: float | None = None) -> bool:
+        """Block until the worker has ended (stopped or faulted); True if it has."""
+        return self._finished.wait(timeout)
+
+    def wait_idle(self, timeout: float) -> bool:
+        """Block until nothing is queued or settling (for tests and the demo)."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self._idle.wait(0.05) and self._hints.empty() and not self._candidates:
+                return True
+            if self._finished.is_set():
+                return False
+        return False
+
+    @property
+    def observers(self) -> list[BaseObserver]:
+        return list(self._observers)
+
+    # ------------------------------------------------------------------ the worker
+
+    def _run(self) -> None:
+        try:
+            self._sweep_temporary_files()
+            self._start_observers()
+            self._scan_all("start")
+            now = time.monotonic()
+            next_rescan = now + self.settings.rescan_seconds
+            next_check = now + self.settings.observer_check_seconds
+            while not self._stop.is_set():
+                now = time.monotonic()
+                wake = min(next_rescan, next_check, self._due[0].when if self._due else now + 60)
+                self._idle.set() if not self._due and self._hints.empty() else self._idle.clear()
+                self._take_hints(max(0.0, min(wake - now, _MAX_WAIT)))
+                now = time.monotonic()
+                if now >= next_check:
+                    self._check_observers()
+                    next_check = now + self.settings.observer_check_seconds
+                if now >= next_rescan:
+                    self._scan_all("periodic")
+                    next_rescan = time.monotonic() + self.settings.rescan_seconds
+                self._settle_due()
+        except (LedgerError, OutputError) as error:
+            self._fail(str(error))
+        except Exception as error:  # a bug of ours: stop loudly rather than run half-broken
+            self._fail(f"internal error: {type(error).__name__}: {error}")
+            log.exception("daemon_bug")
+        finally:
+            self._stop_observers()
+            if self._ledger is not None:
+                self._ledger.close()
+            self._lock.release()
+            log.info("daemon_stopped", fault=self.fault, files=self.outcomes)
+            self._finished.set()
+
+    def _fail(self, message: str) -> None:
+        self.fault = message
+        log.critical("daemon_fault", reason=message)
+
+    def _take_hints(self, timeout: float) -> None:
+        try:
+            hint = self._hints.get(timeout=timeout)
+        except queue.Empty:
+            return
+        for _ in range(10_000):  # a burst is drained at once, but never forever
+            if hint is not None:
+                index, raw = hint
+                self._note(self.plan.inboxes[index], Path(raw))
+            try:
+                hint = self._hints.get_nowait()
+            except queue.Empty:
+                return
+
+    def _wanted(self, inbox: Inbox, path: Path) -> bool:
+        name = path.name
+        if not _matches(name, inbox.patterns) or _matches(name, inbox.ignore):
+            return False
+        try:
+            relative = path.relative_to(inbox.path)
+        except ValueError:
+            return False
+        if len(relative.parts) > 1 and not inbox.recursive:
+            return False
+        return not any(part.startswith(".") for part in relative.parts[:-1])
+
+    def _note(self, inbox: Inbox, path: Path) -> None:
+        """A hint about a path: start watching it settle, unless already doing so."""
+        if path in self._candidates:
+            return
+        try:
+            info = path.stat()
+        except OSError:
+            return  # gone again (a temporary file renamed away): nothing to judge
+        if stat.S_ISDIR(info.st_mode):
+            if inbox.recursive:
+                self._scan(inbox, path)  # a folder moved in brings files no event announces
+            return
+        if not stat.S_ISREG(info.st_mode) or not self._wanted(inbox, path):
+            return
+        self._candidates[path] = _Candidate(inbox, path, info.st_size, info.st_mtime_ns)
+        self._schedule(path, self.settings.settle_seconds)
+
+    def _schedule(self, path: Path, delay: float) -> None:
+        heapq.heappush(self._due, _Due(time.monotonic() + delay, next(self._order), path))
+
+    def _settle_due(self) -> None:
+        while self._due and self._due[0].when <= time.monotonic() and not self._stop.is_set():
+            path = heapq.heappop(self._due).path
+            candidate = self._candidates.get(path)
+            if candidate is not None:
+                self._check_candidate(candidate)
+
+    def _check_candidate(self, candidate: _Candidate) -> None:
+        path = candidate.path
+        try:
+            info = path.stat()
+        except OSError:
+            del self._candidates[path]
+            return
+        if (info.st_size, info.st_mtime_ns) != (candidate.size, candidate.mtime_ns):
+            candidate.size, candidate.mtime_ns = info.st_size, info.st_mtime_ns
+            self._schedule(path, self.settings.settle_seconds)  # still being written
+            return
+        data: bytes | None = None
+        try:
+            if info.st_size > MAX_FILE_BYTES:
+                sha256 = _file_sha256(path)  # judged as too large without being loaded
+            else:
+                with path.open("rb") as stream:
+                    data = stream.read(MAX_FILE_BYTES + 1)
+                sha256 = hashlib.sha256(data).hexdigest()
+            after = path.stat()
+        except FileNotFoundError:
+            del self._candidates[path]
+            return
+        except PermissionError:
+            # Windows: the instrument's software still holds the file open.
+            self._retry(candidate, "file_locked", locked=True)
+            return
+        except OSError as error:
+            self._retry(candidate, "file_unreadable", error=repr(error))
+            return
+        if (after.st_size, after.st_mtime_ns) != (info.st_size, info.st_mtime_ns) or (
+            data is not None and len(data) != info.st_size
+        ):
+            candidate.size, candidate.mtime_ns = after.st_size, after.st_mtime_ns
+            self._schedule(path, self.settings.settle_seconds)  # it changed while being read
+            return
+        del self._candidates[path]
+        self._process(candidate, data, sha256, info.st_size, info.st_mtime_ns)
+
+    def _retry(self, candidate: _Candidate, event: str, **details: object) -> None:
+        candidate.attempts += 1
+        relative = candidate.path.relative_to(candidate.inbox.path).as_posix()
+        if event == "file_unreadable" and candidate.attempts >= _UNREADABLE_ATTEMPTS:
+            # Not lost: unrecorded, so the next rescan tries it again.
+            log.error(event, inbox=candidate.inbox.name, path=relative, gave_up=True, **details)
+            del self._candidates[candidate.path]
+            return
+        if candidate.attempts == 1:
+            log.warning(event, inbox=candidate.inbox.name, path=relative, **details)
+        delay = min(0.5 * 2 ** (candidate.attempts - 1), _LOCKED_BACKOFF_CAP)
+        self._schedule(candidate.path, delay)
+
+    def _process(
+        self, candidate: _Candidate, data: bytes | None, sha256: str, size: int, mtime_ns: int
+    ) -> None:
+        outcome = self._intake.process(
+            candidate.inbox, candidate.path, data, sha256, size, mtime_ns
+        )
+        self.outcomes += 1
+        if self._on_outcome is not None and outcome.status != "unchanged":
+            try:
+                self._on_outcome(outcome)
+            except Exception as error:  # a listener's bug must not stop the watching
+                log.error("outcome_listener_failed", error=repr(error))
+
+    # ------------------------------------------------------------------ scans
+
+    def _scan_all(self, reason: str) -> None:
+        found = sum(self._scan(inbox, inbox.path) for inbox in self.plan.inboxes)
+        if found:
+            log.info("rescan_found", reason=reason, files=found)
+
+    def _walk(self, inbox: Inbox, folder: Path) -> Iterator[os.DirEntry[str]]:
+        with os.scandir(folder) as entries:
+            for entry in entries:
+                if entry.is_dir(follow_symlinks=False):
+                    if inbox.recursive and not entry.name.startswith("."):
+                        yield from self._walk(inbox, Path(entry.path))
+                elif entry.is_file():
+                    yield entry
+
+    def _scan(self, inbox: Inbox, folder: Path) -> int:
+        """Queue every wanted file of ``folder`` that the ledger does not know as it is now."""
+        assert self._ledger is not None
+        found = 0
+        try:
+            entries = list(self._walk(inbox, folder))
+        except OSError as error:
+            if inbox.name not in self._unreachable:
+                log.error(
+                    "inbox_unreachable", inbox=inbox.name, path=str(folder), error=repr(error)
+                )
+                self._unreachable.add(inbox.name)
+            return 0
+        if inbox.name in self._unreachable and folder == inbox.path:
+            log.info("inbox_reachable", inbox=inbox.name, path=str(folder))
+            self._unreachable.discard(inbox.name)
+        for entry in entries:
+            path = Path(entry.path)
+            if path in self._candidates or not self._wanted(inbox, path):
+                continue
+            try:
+                info = entry.stat()
+            except OSError:
+                continue
+            seen = self._ledger.seen(inbox.name, path.relative_to(inbox.path).as_posix())
+            if seen is not None and (seen.size, seen.mtime_ns) == (info.st_size, info.st_mtime_ns):
+                continue
+            self._candidates[path] = _Candidate(inbox, path, info.st_size, info.st_mtime_ns)
+            self._schedule(path, self.settings.settle_seconds)
+            found += 1
+        return found
+
+    def _sweep_temporary_files(self) -> None:
+        """Remove half-written outputs a killed daemon left (never anything else)."""
+        for inbox in self.plan.inboxes:
+            if not inbox.out_dir.is_dir():
+                continue
+            folders = inbox.out_dir.rglob("*") if inbox.recursive else ()
+            for folder in (inbox.out_dir, *(p for p in folders if p.is_dir())):
+                for entry in os.scandir(folder):
+                    if entry.is_file() and is_leftover_temporary(entry.name):
+                        Path(entry.path).unlink(missing_ok=True)
+                        log.info("temporary_file_removed", path=entry.path)
+
+    # ------------------------------------------------------------------ observers
+
+    def _start_observers(self) -> None:
+        self._observers = []
+        native = [i for i, inbox in enumerate(self.plan.inboxes) if not inbox.polling]
+        polling = [i for i, inbox in enumerate(self.plan.inboxes) if inbox.polling]
+        if native:
+            try:
+                self._observers.append(self._observer(Observer(), native))
+            except OSError as error:
+                # e.g. the inotify watch limit: listing the folder still works.
+                log.warning("native_events_unavailable", error=repr(error), fallback="polling")
+                polling = polling + native
+        if polling:
+            interval = self.settings.polling_interval_seconds
+            self._observers.append(self._observer(PollingObserver(timeout=interval), polling))
+
+    def _observer(self, observer: BaseObserver, inboxes: list[int]) -> BaseObserver:
+        for index in inboxes:
+            inbox = self.plan.inboxes[index]
+            observer.schedule(
+                _Hints(index, self._hints), str(inbox.path), recursive=inbox.recursive
+            )
+        observer.daemon = True
+        try:
+            observer.start()
+        except BaseException:
+            observer.stop()
+            raise
+        return observer
+
+    def _observers_alive(self) -> bool:
+        return all(
+            observer.is_alive() and all(emitter.is_alive() for emitter in observer.emitters)
+            for observer in self._observers
+        )
+
+    def _check_observers(self) -> None:
+        if self._observers_alive():
+            return
+        log.warning("observer_restarted", reason="the folder observer had stopped")
+        self._stop_observers()
+        try:
+            self._start_observers()
+        except OSError as error:  # e.g. the inbox is gone for now; tried again next check
+            log.error("observer_start_failed", error=repr(error))
+        self._scan_all("observer restarted")
+
+    def _stop_observers(self) -> None:
+        for observer in self._observers:
+            try:
+                observer.stop()
+                if observer.is_alive():
+                    observer.join(timeout=5)
+            except Exception as error:
+                log.warning("observer_stop_failed", error=repr(error))
+        self._observers = []
