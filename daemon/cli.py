@@ -19,6 +19,9 @@ if TYPE_CHECKING:
     from daemon.config import AppConfig
 
 EXIT_PASS, EXIT_FAIL, EXIT_ERROR = 0, 1, 2
+EXIT_FAULT = (
+    3  # the daemon stopped on a fault it cannot recover from; a service manager restarts it
+)
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -63,6 +66,42 @@ def _parser() -> argparse.ArgumentParser:
     config_check.add_argument("file", type=Path, help="the YAML configuration")
     config_commands.add_parser(
         "schema", help="print the configuration's JSON Schema (for editors' YAML completion)"
+    )
+
+    watch = commands.add_parser(
+        "watch",
+        help="watch export folders and judge every file as it lands",
+        description="Watch an instrument's export folder: judge each file once it is "
+        "complete, write its verdict, flagged copy and report to --out. Runs until "
+        "Ctrl+C or SIGTERM (exit 0); exit 2 when it cannot start, 3 after a fault.",
+    )
+    watch.add_argument(
+        "inbox", nargs="?", type=Path, help="the folder to watch (or list inboxes in --config)"
+    )
+    watch.add_argument("--out", type=Path, help="folder for the outputs (or watch.out)")
+    watch.add_argument("--config", type=Path, help="YAML configuration")
+    watch.add_argument(
+        "--settle",
+        type=float,
+        metavar="SECONDS",
+        help="a file is complete when unchanged for this long (default 2)",
+    )
+    watch.add_argument(
+        "--polling",
+        action="store_true",
+        default=None,
+        help="list the folders instead of waiting for events (network shares)",
+    )
+
+    status = commands.add_parser("status", help="what the daemon has done, from its ledger")
+    status.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
+    status.add_argument("--config", type=Path, help="or: the daemon's configuration")
+
+    demo = commands.add_parser(
+        "demo", help="watch a demo folder while example runs land in it, then summarise"
+    )
+    demo.add_argument(
+        "--dir", type=Path, default=Path("calwarden-demo"), help="default ./calwarden-demo"
     )
 
     listing = commands.add_parser("rules", help="list every acceptance rule with its defaults")
@@ -190,6 +229,104 @@ def _rules(args: argparse.Namespace) -> int:
     return EXIT_PASS
 
 
+def _watch(args: argparse.Namespace) -> int:
+    import signal
+    import threading
+
+    from daemon.config import plan_watch
+    from daemon.logs import configure_logging
+    from daemon.watcher import StartError, Watcher
+    from rules.errors import ConfigError
+
+    config = _load_config_or_say_why(args.config)
+    if config is None:
+        return EXIT_ERROR
+    try:
+        plan = plan_watch(
+            config,
+            config_dir=args.config.resolve().parent if args.config else None,
+            inbox=args.inbox,
+            out=args.out,
+            settle_seconds=args.settle,
+            polling=args.polling,
+        )
+    except ConfigError as error:
+        print(f"calwarden: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    try:
+        undo_logging = configure_logging(
+            plan.state_dir,
+            max_bytes=plan.settings.log_max_bytes,
+            backups=plan.settings.log_backups,
+        )
+    except OSError as error:
+        print(
+            f"calwarden: cannot write the state folder {plan.state_dir}: {error}", file=sys.stderr
+        )
+        return EXIT_ERROR
+    stop = threading.Event()
+
+    def request_stop(signum: int, frame: object) -> None:
+        stop.set()
+
+    watcher = Watcher(plan)
+    try:
+        try:
+            watcher.start()
+        except StartError as error:
+            print(f"calwarden: {error}", file=sys.stderr)
+            return EXIT_ERROR
+        previous = {
+            number: signal.signal(number, request_stop)
+            for number in (signal.SIGINT, signal.SIGTERM)
+        }
+        try:
+            while not stop.is_set() and not watcher.wait(0.5):
+                pass
+        finally:
+            watcher.stop()
+            for number, handler in previous.items():
+                signal.signal(number, handler)
+    finally:
+        undo_logging()
+    if watcher.fault:
+        print(f"calwarden: stopped after a fault: {watcher.fault}", file=sys.stderr)
+        return EXIT_FAULT
+    return EXIT_PASS
+
+
+def _status(args: argparse.Namespace) -> int:
+    from daemon.config import plan_watch
+    from daemon.status import status_report
+    from rules.errors import ConfigError
+
+    state_dir = (args.out or Path.cwd()).resolve() / ".calwarden"
+    if args.config is not None:
+        config = _load_config_or_say_why(args.config)
+        if config is None:
+            return EXIT_ERROR
+        if config.watch.state_dir or config.watch.out or args.out:
+            try:
+                state_dir = plan_watch(
+                    config,
+                    config_dir=args.config.resolve().parent,
+                    out=args.out,
+                    inbox=Path.cwd() if not config.inboxes else None,
+                ).state_dir
+            except ConfigError as error:
+                print(f"calwarden: {error}", file=sys.stderr)
+                return EXIT_ERROR
+    text, found = status_report(state_dir)
+    print(text, end="")
+    return EXIT_PASS if found else EXIT_ERROR
+
+
+def _demo(args: argparse.Namespace) -> int:
+    from daemon.demo import run_demo
+
+    return run_demo(args.dir)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     if args.version:
@@ -205,6 +342,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _inspect(args)
     if args.command == "config":
         return _config(args)
+    if args.command == "watch":
+        return _watch(args)
+    if args.command == "status":
+        return _status(args)
+    if args.command == "demo":
+        return _demo(args)
     _parser().print_help()
     return EXIT_ERROR
 
