@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import time
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path, PurePosixPath
@@ -162,6 +163,7 @@ class Intake:
     def _judge(
         self, inbox: Inbox, path: Path, relative: str, data: bytes | None, seen: Seen
     ) -> Outcome:
+        started = time.perf_counter()
         previous = self.ledger.current(inbox.name, relative)
         version = 1 if previous is None else previous.version + 1
         judgement = self._judgement(inbox, path, data)
@@ -219,6 +221,7 @@ class Intake:
             config_sha256=self._digests.get(inbox.name),
             calwarden_version=document["calwarden_version"],
             verdict=str(verdict_path),
+            seconds=round(time.perf_counter() - started, 4),  # settled file to recorded verdict
         )
         return Outcome(
             inbox.name,

@@ -22,6 +22,16 @@ import structlog
 LOG_NAME = "calwarden.log"
 
 
+def _time_level_event_first(
+    logger: object, method: str, event_dict: structlog.typing.EventDict
+) -> structlog.typing.EventDict:
+    """Key order for a reader scanning the JSON lines: when, how bad, what, then details."""
+    head = {
+        key: event_dict.pop(key) for key in ("timestamp", "level", "event") if key in event_dict
+    }
+    return {**head, **event_dict}
+
+
 def configure_logging(
     state_dir: Path, *, max_bytes: int, backups: int, console: bool = True
 ) -> Callable[[], None]:
@@ -42,6 +52,7 @@ def configure_logging(
             processors=[
                 structlog.stdlib.ProcessorFormatter.remove_processors_meta,
                 structlog.processors.format_exc_info,
+                _time_level_event_first,
                 structlog.processors.JSONRenderer(sort_keys=False, ensure_ascii=False),
             ],
             foreign_pre_chain=common,

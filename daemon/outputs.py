@@ -82,13 +82,13 @@ def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
             key = (row.fields[analyte_column].strip(), int(row.fields[seq_column]))
         except (ValueError, IndexError):
             key = ("", -1)  # cannot happen for a table that was judged; write no result
-        result = results.get(key)
-        if result is not None:
+        found = results.get(key)
+        if found is not None:
             extra = [
-                _cell(result.concentration),
-                _cell(result.uncertainty),
-                result.unit or "",
-                " ".join(flag.value for flag in result.flags),
+                _cell(found.concentration),
+                _cell(found.uncertainty),
+                found.unit or "",
+                " ".join(flag.value for flag in found.flags),
             ]
         elif key in back_calculated:
             extra = [_cell(back_calculated[key]), "", "", ""]

@@ -7,6 +7,7 @@ reported the same way.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any
 
 SEVERITY_ORDER = {"fail": 0, "warn": 1, "info": 2}
@@ -149,7 +150,7 @@ def _results(document: dict[str, Any]) -> list[str]:
     return lines
 
 
-def _table(rows: list[tuple[str, ...]]) -> list[str]:
+def _table(rows: Sequence[tuple[str, ...]]) -> list[str]:
     widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
     return [
         "  ".join(cell.ljust(width) for cell, width in zip(row, widths, strict=True)).rstrip()

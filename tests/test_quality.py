@@ -27,7 +27,9 @@ def test_ruff_format_is_clean() -> None:
     assert result.returncode == 0, result.stdout + result.stderr
 
 
-def test_mypy_strict_on_the_core() -> None:
-    """rules/ type-checks under mypy --strict."""
-    result = _run("mypy", "--strict", "--no-incremental", "--cache-dir", "/dev/null", "rules")
+def test_mypy_strict_on_core_and_shell() -> None:
+    """rules/ and daemon/ type-check under mypy --strict."""
+    result = _run(
+        "mypy", "--strict", "--no-incremental", "--cache-dir", "/dev/null", "rules", "daemon"
+    )
     assert result.returncode == 0, result.stdout + result.stderr
