@@ -199,7 +199,8 @@ def _config(args: argparse.Namespace) -> int:
         return EXIT_ERROR
     overrides = len(config.criteria.analytes)
     layout = "an export format" if config.format else "the native CSV format"
-    print(f"{args.file}: valid ({overrides} analyte override(s), reads {layout})")
+    inboxes = f", {len(config.inboxes)} inbox(es)" if config.inboxes else ""
+    print(f"{args.file}: valid ({overrides} analyte override(s), reads {layout}{inboxes})")
     return EXIT_PASS
 
 
