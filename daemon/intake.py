@@ -121,7 +121,7 @@ class Intake:
             self.ledger.touch(inbox.name, relative, seen)
             return Outcome(inbox.name, relative, "unchanged", sha256)
 
-        original = self.ledger.judged_content(inbox.name, sha256)
+        original = self.ledger.judged_content(inbox.name, sha256, elsewhere_than=relative)
         if original is not None:
             self.ledger.record_duplicate(
                 inbox.name,

@@ -70,8 +70,7 @@ CREATE TABLE IF NOT EXISTS evaluations (
     document BLOB,
     flagged BLOB
 );
-CREATE UNIQUE INDEX IF NOT EXISTS one_judgement_per_content
-    ON evaluations (inbox, sha256) WHERE outcome != 'duplicate';
+CREATE INDEX IF NOT EXISTS evaluations_by_content ON evaluations (inbox, sha256);
 CREATE INDEX IF NOT EXISTS evaluations_by_path ON evaluations (inbox, path, version);
 CREATE INDEX IF NOT EXISTS evaluations_by_stem ON evaluations (inbox, output_stem);
 """
@@ -226,6 +225,11 @@ class Ledger:
 
     # ------------------------------------------------------------------ queries
 
+    def unchanged(self, inbox: str, path: str, size: int, mtime_ns: int) -> bool:
+        """Whether the file was recorded with exactly this size and modification time."""
+        seen = self.seen(inbox, path)
+        return seen is not None and (seen.size, seen.mtime_ns) == (size, mtime_ns)
+
     def seen(self, inbox: str, path: str) -> Seen | None:
         """The last recorded size, mtime and hash of a file, or None if never judged."""
         row = self._one(
@@ -233,13 +237,17 @@ class Ledger:
         )
         return None if row is None else Seen(*row)  # type: ignore[arg-type]
 
-    def judged_content(self, inbox: str, sha256: str) -> Evaluation | None:
-        """The evaluation that judged this content in this inbox, if any."""
+    def judged_content(self, inbox: str, sha256: str, *, elsewhere_than: str) -> Evaluation | None:
+        """The first judgement of this content in this inbox under another name, if any.
+
+        A file whose content returns to an earlier version's is not a duplicate of
+        itself: it is judged again, as its newest version.
+        """
         return _evaluation(
             self._one(
-                f"SELECT {_COLUMNS} FROM evaluations "
-                "WHERE inbox = ? AND sha256 = ? AND outcome != 'duplicate'",
-                (inbox, sha256),
+                f"SELECT {_COLUMNS} FROM evaluations WHERE inbox = ? AND sha256 = ? "
+                "AND outcome != 'duplicate' AND path != ? ORDER BY id LIMIT 1",
+                (inbox, sha256, elsewhere_than),
             )
         )
 

@@ -269,6 +269,10 @@ class Watcher:
             return
         if not stat.S_ISREG(info.st_mode) or not self._wanted(inbox, path):
             return
+        assert self._ledger is not None
+        relative = path.relative_to(inbox.path).as_posix()
+        if self._ledger.unchanged(inbox.name, relative, info.st_size, info.st_mtime_ns):
+            return  # a late event about a file already judged as it is
         self._candidates[path] = _Candidate(inbox, path, info.st_size, info.st_mtime_ns)
         self._schedule(path, self.settings.settle_seconds)
 
@@ -387,8 +391,8 @@ class Watcher:
                 info = entry.stat()
             except OSError:
                 continue
-            seen = self._ledger.seen(inbox.name, path.relative_to(inbox.path).as_posix())
-            if seen is not None and (seen.size, seen.mtime_ns) == (info.st_size, info.st_mtime_ns):
+            relative = path.relative_to(inbox.path).as_posix()
+            if self._ledger.unchanged(inbox.name, relative, info.st_size, info.st_mtime_ns):
                 continue
             self._candidates[path] = _Candidate(inbox, path, info.st_size, info.st_mtime_ns)
             self._schedule(path, self.settings.settle_seconds)
