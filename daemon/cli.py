@@ -271,24 +271,24 @@ def _watch(args: argparse.Namespace) -> int:
         stop.set()
 
     watcher = Watcher(plan)
+    # Installed before the watcher starts, so that no signal finds the daemon half-started.
+    previous = {
+        number: signal.signal(number, request_stop) for number in (signal.SIGINT, signal.SIGTERM)
+    }
     try:
         try:
             watcher.start()
         except StartError as error:
             print(f"calwarden: {error}", file=sys.stderr)
             return EXIT_ERROR
-        previous = {
-            number: signal.signal(number, request_stop)
-            for number in (signal.SIGINT, signal.SIGTERM)
-        }
         try:
             while not stop.is_set() and not watcher.wait(0.5):
                 pass
         finally:
             watcher.stop()
-            for number, handler in previous.items():
-                signal.signal(number, handler)
     finally:
+        for number, handler in previous.items():
+            signal.signal(number, handler)
         undo_logging()
     if watcher.fault:
         print(f"calwarden: stopped after a fault: {watcher.fault}", file=sys.stderr)

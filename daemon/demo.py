@@ -18,7 +18,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from daemon.config import AppConfig, plan_watch
+from daemon.config import load_config, plan_watch
 from daemon.intake import Outcome
 from daemon.logs import LOG_NAME, configure_logging
 from daemon.watcher import StartError, Watcher
@@ -64,7 +64,7 @@ class DemoError(Exception):
     """The demo cannot run (its folder is taken, the example runs are missing)."""
 
 
-def _prepare(folder: Path) -> tuple[Path, Path]:
+def _prepare(folder: Path, settle_seconds: float) -> tuple[Path, Path]:
     """An empty demo folder; an earlier demo's folder is cleared, anything else refused."""
     if not DEMO_RUNS.is_dir():
         raise DemoError(
@@ -78,8 +78,7 @@ def _prepare(folder: Path) -> tuple[Path, Path]:
             pass
         else:
             raise DemoError(
-                f"{folder} exists and is not a calwarden demo folder; "
-                "give another one with --dir"
+                f"{folder} exists and is not a calwarden demo folder; give another one with --dir"
             )
     inbox, out = folder / "inbox", folder / "out"
     inbox.mkdir(parents=True, exist_ok=True)
@@ -92,7 +91,7 @@ def _prepare(folder: Path) -> tuple[Path, Path]:
         "# (drop a file of ../fixtures into inbox/ and see its verdict appear in out/)\n"
         "watch:\n"
         "  out: out\n"
-        f"  settle_seconds: {SETTLE_SECONDS}\n"
+        f"  settle_seconds: {settle_seconds}\n"
         "inboxes:\n"
         "  - path: inbox\n"
         "    name: demo\n",
@@ -101,7 +100,7 @@ def _prepare(folder: Path) -> tuple[Path, Path]:
     return inbox, out
 
 
-def _write(drop: Drop, inbox: Path) -> None:
+def _write(drop: Drop, inbox: Path, settle_seconds: float) -> None:
     data = (DEMO_RUNS / drop.source).read_bytes()
     target = inbox / drop.name
     if drop.how == "slowly":
@@ -111,7 +110,7 @@ def _write(drop: Drop, inbox: Path) -> None:
             for start in range(0, len(data), step):
                 stream.write(data[start : start + step])
                 stream.flush()
-                time.sleep(SETTLE_SECONDS / 4)
+                time.sleep(settle_seconds / 4)
     elif drop.how == "renamed":
         temporary = inbox / f"~{drop.name}.tmp"  # an ignored name until renamed into place
         temporary.write_bytes(data)
@@ -135,15 +134,27 @@ def describe(outcome: Outcome) -> str:
     return f"FAIL   {name}: {outcome.failures} failure(s){warnings}{reruns}{first}"
 
 
-def run_demo(folder: Path, *, say: Callable[[str], None] = print) -> int:
-    """Run the demo in ``folder``; 0 when every file got its verdict, 2 otherwise."""
+def run_demo(
+    folder: Path,
+    *,
+    say: Callable[[str], None] = print,
+    settle_seconds: float = SETTLE_SECONDS,
+) -> int:
+    """Run the demo in ``folder``; 0 when every file got its verdict, 2 otherwise.
+
+    ``settle_seconds`` is shorter in tests, which need no pause for a reader.
+    """
     folder = folder.resolve()
     try:
-        inbox, out = _prepare(folder)
+        inbox, out = _prepare(folder, settle_seconds)
     except (DemoError, OSError) as error:
         print(f"calwarden: {error}", file=sys.stderr)
         return 2
-    plan = plan_watch(AppConfig(), inbox=inbox, out=out, settle_seconds=SETTLE_SECONDS)
+    # The plan comes from the configuration the demo writes, so that watching the folder
+    # later with it finds every file already judged (the ledger keys files on the inbox name).
+    config_path = folder / "calwarden.yaml"
+    config = load_config(config_path)
+    plan = plan_watch(config, config_dir=folder)
     undo_logging = configure_logging(
         plan.state_dir,
         max_bytes=plan.settings.log_max_bytes,
@@ -153,7 +164,7 @@ def run_demo(folder: Path, *, say: Callable[[str], None] = print) -> int:
     outcomes: queue.Queue[Outcome] = queue.Queue()
     watcher = Watcher(plan, on_outcome=outcomes.put)
     say(f"calwarden demo: watching {inbox}")
-    say(f"  outputs go to {out}; a file counts as complete after {SETTLE_SECONDS:g} s unchanged\n")
+    say(f"  outputs go to {out}; a file counts as complete after {settle_seconds:g} s unchanged\n")
     tally: dict[str, int] = {}
     try:
         try:
@@ -164,7 +175,7 @@ def run_demo(folder: Path, *, say: Callable[[str], None] = print) -> int:
         try:
             for drop in DROPS:
                 say(f"-> {drop.story}: {drop.name} arrives ({drop.how})")
-                _write(drop, inbox)
+                _write(drop, inbox, settle_seconds)
                 try:
                     outcome = outcomes.get(timeout=_WAIT_SECONDS)
                 except queue.Empty:
@@ -185,7 +196,7 @@ def run_demo(folder: Path, *, say: Callable[[str], None] = print) -> int:
     say(f"  ledger and JSON log:               {plan.state_dir} ({LOG_NAME})")
     say(f"  the failing run's report:          {out / 'bwl-demo-1202-metals.report.txt'}")
     say(f"  status any time:                   calwarden status --out {out}")
-    say(f"  watch it yourself:                 calwarden watch --config {folder}/calwarden.yaml")
+    say(f"  watch it yourself:                 calwarden watch --config {config_path}")
     say(
         "Automated screening supports, and does not replace, the analyst's review, the "
         "method's own criteria and the lab's procedures."

@@ -26,10 +26,22 @@ ADDED_COLUMNS = ("concentration", "uncertainty", "result_unit", "flags")
 _REPLACE_ATTEMPTS = 5  # Windows refuses os.replace while another process holds the target open
 
 
+def _current_umask() -> int:
+    mask = os.umask(0)  # the only way to read it is to set it; put it straight back
+    os.umask(mask)
+    return mask
+
+
+# mkstemp makes files 0600; outputs get the mode any new file would (0644 under umask 022).
+_FILE_MODE = 0o666 & ~_current_umask()
+
+
 def atomic_write(path: Path, data: bytes) -> None:
     """Write ``data`` to ``path`` so that ``path`` holds either the old or the new content."""
     handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        if hasattr(os, "fchmod"):  # not on Windows, where the mode bits mean little
+            os.fchmod(handle, _FILE_MODE)
         with os.fdopen(handle, "wb") as stream:
             stream.write(data)
             stream.flush()

@@ -23,6 +23,8 @@ from typing import Any
 
 import pytest
 
+from daemon.demo import run_demo
+
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
 PASSING = FIXTURES / "bwl-metals-pass.csv"
@@ -418,11 +420,6 @@ def test_status_after_watch_stopped_says_not_running_and_keeps_the_counts(
 
 
 @posix_only
-@pytest.mark.xfail(
-    reason="daemon/outputs.py atomic_write: tempfile.mkstemp creates the file 0600 and "
-    "os.replace keeps that mode, so verdicts ignore the umask",
-    strict=True,
-)
 def test_outputs_are_readable_as_the_umask_allows(spawn: Spawn, folders: tuple[Path, Path]) -> None:
     """Under umask 022 the verdict, flagged copy and report are written 0644, like any file."""
     inbox, out = folders
@@ -471,7 +468,7 @@ def _verdict_lines(stdout: str) -> list[str]:
 
 @pytest.fixture(scope="module")
 def demo_runs(tmp_path_factory: pytest.TempPathFactory) -> DemoRuns:
-    """The demo run twice in one folder, with strays left between the runs (~20 s)."""
+    """The demo run twice in one folder, with strays left between the runs (~13 s)."""
     cwd = tmp_path_factory.mktemp("demo")
     folder = cwd / "calwarden-demo"
     first = calwarden("demo", "--dir", folder, cwd=cwd, timeout=120)
@@ -481,7 +478,10 @@ def demo_runs(tmp_path_factory: pytest.TempPathFactory) -> DemoRuns:
         first_verdicts[path.name] = (document["status"], document["source"]["sha256"])
     (folder / "out" / "left-by-the-first-demo.txt").write_text("stray\n", encoding="utf-8")
     shutil.copyfile(PASSING, folder / "inbox" / "left-by-the-first-demo.csv")
-    second = calwarden("demo", "--dir", folder, cwd=cwd, timeout=120)
+    # The second run in-process with a short settle time: the folder handling is the same.
+    printed: list[str] = []
+    code = run_demo(folder, say=printed.append, settle_seconds=0.2)
+    second = subprocess.CompletedProcess(["demo"], code, "\n".join(printed) + "\n", "")
     return DemoRuns(folder, first, first_verdicts, second)
 
 
@@ -539,12 +539,6 @@ def test_demo_refuses_a_folder_that_is_not_a_demo_folder(tmp_path: Path) -> None
 
 
 @posix_only
-@pytest.mark.xfail(
-    reason="daemon/demo.py: run_demo watches under the inbox name 'inbox' (plan_watch with "
-    "inbox=...), but the calwarden.yaml it writes names the inbox 'demo', so the ledger "
-    "does not know the demo's files under that name",
-    strict=True,
-)
 def test_watching_the_demo_folder_with_its_configuration_judges_nothing_again(
     demo_runs: DemoRuns, spawn: Spawn, tmp_path: Path
 ) -> None:
