@@ -121,7 +121,11 @@ class Intake:
             self.ledger.touch(inbox.name, relative, seen)
             return Outcome(inbox.name, relative, "unchanged", sha256)
 
-        original = self.ledger.judged_content(inbox.name, sha256, elsewhere_than=relative)
+        # Only a path never judged can be a duplicate: a judged file given another
+        # file's content is a new version of itself, and needs a current verdict.
+        original = None
+        if self.ledger.current(inbox.name, relative) is None:
+            original = self.ledger.judged_content(inbox.name, sha256, elsewhere_than=relative)
         if original is not None:
             self.ledger.record_duplicate(
                 inbox.name,

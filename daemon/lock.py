@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import sys
+import time
 from pathlib import Path
 from typing import IO
 
@@ -61,7 +62,12 @@ class StateLock:
         """Take the lock, or raise :class:`StateLocked` naming the process that holds it."""
         self.path.parent.mkdir(parents=True, exist_ok=True)
         handle = self.path.open("a+", encoding="utf-8")
-        if not _try_lock(handle):
+        # A few tries: `calwarden status` takes the lock for an instant to test it.
+        for _ in range(10):
+            if _try_lock(handle):
+                break
+            time.sleep(0.1)
+        else:
             handle.close()
             owner = lock_owner(self.path.parent)
             who = f" (process {owner})" if owner else ""

@@ -129,6 +129,7 @@ class Watcher:
         self._ledger: Ledger | None = None
         self._thread: threading.Thread | None = None
         self._unreachable: set[str] = set()
+        self._observer_failing = False
 
     # ------------------------------------------------------------------ life cycle
 
@@ -443,6 +444,8 @@ class Watcher:
         return observer
 
     def _observers_alive(self) -> bool:
+        if not self._observers:
+            return False  # a restart that failed: try again at the next check
         return all(
             observer.is_alive() and all(emitter.is_alive() for emitter in observer.emitters)
             for observer in self._observers
@@ -450,13 +453,21 @@ class Watcher:
 
     def _check_observers(self) -> None:
         if self._observers_alive():
+            if self._observer_failing:
+                log.info("observer_recovered")
+                self._observer_failing = False
             return
-        log.warning("observer_restarted", reason="the folder observer had stopped")
+        if not self._observer_failing:
+            log.warning("observer_restarted", reason="the folder observer had stopped")
         self._stop_observers()
         try:
             self._start_observers()
         except OSError as error:  # e.g. the inbox is gone for now; tried again next check
-            log.error("observer_start_failed", error=repr(error))
+            if not self._observer_failing:  # said once, not at every check
+                log.error("observer_start_failed", error=repr(error))
+            self._observer_failing = True
+            self._stop_observers()
+            return
         self._scan_all("observer restarted")
 
     def _stop_observers(self) -> None:

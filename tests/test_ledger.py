@@ -222,12 +222,6 @@ def test_file_reverted_to_earlier_content_has_a_current_verdict(
     assert earlier["source"]["sha256"] == sha256(FAILING)
 
 
-@pytest.mark.xfail(
-    reason="daemon/intake.py Intake.process: new content at a judged path that equals another "
-    "file's judged content is recorded as a duplicate, so <stem>.verdict.json keeps the "
-    "earlier version's verdict of bytes the file no longer holds",
-    strict=True,
-)
 def test_file_rewritten_with_another_files_content_has_a_current_verdict(
     plan: WatchPlan, intake: Intake
 ) -> None:

@@ -325,12 +325,6 @@ def test_dead_observer_is_restarted_and_nothing_is_missed(
     assert running.wait_path("after.csv").status == "pass"
 
 
-@pytest.mark.xfail(
-    reason="daemon/watcher.py Watcher._check_observers: when restarting fails (the inbox "
-    "folder is gone) self._observers stays [], _observers_alive() is all([]) == True, so "
-    "no observer is ever started again and new files wait for the periodic rescan",
-    strict=True,
-)
 def test_inbox_folder_made_again_is_watched_again(
     inbox: Path, out: Path, start: Callable[[WatchPlan], Running], events: list[dict[str, Any]]
 ) -> None:
