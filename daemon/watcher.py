@@ -384,6 +384,7 @@ class Watcher:
         if inbox.name in self._unreachable and folder == inbox.path:
             log.info("inbox_reachable", inbox=inbox.name, path=str(folder))
             self._unreachable.discard(inbox.name)
+        new: list[tuple[int, Path, int]] = []
         for entry in entries:
             path = Path(entry.path)
             if path in self._candidates or not self._wanted(inbox, path):
@@ -395,7 +396,11 @@ class Watcher:
             relative = path.relative_to(inbox.path).as_posix()
             if self._ledger.unchanged(inbox.name, relative, info.st_size, info.st_mtime_ns):
                 continue
-            self._candidates[path] = _Candidate(inbox, path, info.st_size, info.st_mtime_ns)
+            new.append((info.st_mtime_ns, path, info.st_size))
+        # Oldest first: a backlog is judged in the order the instrument wrote it, which
+        # is the order its control points join their charts.
+        for mtime_ns, path, size in sorted(new, key=lambda item: item[0]):
+            self._candidates[path] = _Candidate(inbox, path, size, mtime_ns)
             self._schedule(path, self.settings.settle_seconds)
             found += 1
         return found
