@@ -15,6 +15,7 @@ from typing import Any
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
+from daemon.control_log import ControlSettings, FixedLimits
 from daemon.formats import (
     ColumnByPattern,
     ExportFormat,
@@ -40,6 +41,10 @@ class AppConfig(BaseModel):
     format: ExportFormat | None = Field(
         default=None,
         description="the layout of the instrument's export; absent: calwarden's native CSV",
+    )
+    control: ControlSettings = Field(
+        default_factory=ControlSettings,
+        description="the control-chart log across runs: limits, Westgard rules, charts",
     )
     watch: WatchSettings = Field(default_factory=WatchSettings)
     inboxes: tuple[InboxSettings, ...] = Field(
@@ -110,6 +115,8 @@ def _known_keys() -> list[str]:
         ColumnByPattern,
         WatchSettings,
         InboxSettings,
+        ControlSettings,
+        FixedLimits,
     )
     return [name for model in models for name in model.model_fields]
 
@@ -289,7 +296,11 @@ def plan_watch(
                 recursive=entry.recursive,
                 polling=settings.polling if entry.polling is None else entry.polling,
                 instrument=entry.instrument,
-                config=AppConfig(criteria=entry.criteria or config.criteria, format=layout),
+                config=AppConfig(
+                    criteria=entry.criteria or config.criteria,
+                    format=layout,
+                    control=config.control,
+                ),
             )
         )
     paths = [item.path for item in resolved]

@@ -28,11 +28,13 @@ from typing import Any
 import structlog
 
 from daemon.config import AppConfig, Inbox
-from daemon.ledger import Evaluation, Ledger, NewEvaluation, Seen
+from daemon.control_log import Assessment, amend, assess
+from daemon.ledger import Evaluation, Ledger, NewEvaluation, Seen, SeriesKey
 from daemon.outputs import output_files, write_files
 from daemon.pipeline import Judgement, error_document, judge_file
 from daemon.report import render
 from daemon.verdict_json import calwarden_version
+from rules.control_points import control_observations
 
 log = structlog.get_logger("calwarden")
 
@@ -61,6 +63,7 @@ class Outcome:
     version: int = 0
     duplicate_of: str | None = None
     reruns: int = 0
+    series: tuple[SeriesKey, ...] = ()  # the control charts this file added points to
 
 
 def config_digest(config: AppConfig) -> str:
@@ -171,7 +174,8 @@ class Intake:
         previous = self.ledger.current(inbox.name, relative)
         version = 1 if previous is None else previous.version + 1
         judgement = self._judgement(inbox, path, data)
-        document = judgement.document
+        assessment = self._assess(inbox, relative, judgement)
+        document = amend(judgement.document, assessment)
         stem = self._output_stem(inbox, relative) if previous is None else previous.output_stem
         assert stem is not None
         out_folder = inbox.out_dir / PurePosixPath(stem).parent
@@ -206,6 +210,8 @@ class Intake:
                 evaluated_at=_now(),
                 document=files[".verdict.json"],
                 flagged=files.get(".flagged.csv"),
+                control_points=assessment.points,
+                control_limits=assessment.limits,
             )
         )
         verdict_path = out_folder / f"{name}.verdict.json"
@@ -240,6 +246,24 @@ class Intake:
             verdict_path=verdict_path,
             version=version,
             reruns=len(document.get("reruns", [])),
+            series=tuple(dict.fromkeys(point.key for point in assessment.points)),
+        )
+
+    def _assess(self, inbox: Inbox, relative: str, judgement: Judgement) -> Assessment:
+        """This run's control points and the control-chart findings they complete."""
+        settings = inbox.config.control
+        if judgement.verdict is None or judgement.run is None or not settings.enabled:
+            return Assessment((), (), (), ())
+        document = judgement.document
+        instrument = document.get("instrument") or inbox.instrument or inbox.name
+        return assess(
+            self.ledger,
+            settings,
+            str(instrument),
+            str(document.get("run") or relative),
+            control_observations(judgement.run, judgement.verdict),
+            _now(),
+            replacing=(inbox.name, relative),
         )
 
     def _judgement(self, inbox: Inbox, path: Path, data: bytes | None) -> Judgement:

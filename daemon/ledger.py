@@ -71,6 +71,47 @@ CREATE TABLE IF NOT EXISTS evaluations (
     flagged BLOB
 );
 CREATE INDEX IF NOT EXISTS evaluations_by_content ON evaluations (inbox, sha256);
+-- The control-chart log: every control observation of every judged run, one series
+-- per instrument, analyte, kind and level. A file judged again adds nothing (the
+-- UNIQUE key), and the points of a file's earlier versions are marked superseded.
+CREATE TABLE IF NOT EXISTS control_points (
+    id INTEGER PRIMARY KEY,
+    evaluation_id INTEGER NOT NULL REFERENCES evaluations (id),
+    instrument TEXT NOT NULL,
+    analyte TEXT NOT NULL,
+    kind TEXT NOT NULL,
+    level TEXT NOT NULL,
+    run TEXT NOT NULL,
+    seq INTEGER,
+    sample_id TEXT,
+    acquired TEXT,
+    value REAL NOT NULL,
+    unit TEXT NOT NULL,
+    sha256 TEXT NOT NULL,
+    accepted INTEGER NOT NULL DEFAULT 1,
+    superseded INTEGER NOT NULL DEFAULT 0,
+    UNIQUE (sha256, instrument, analyte, kind, level, seq)
+);
+CREATE INDEX IF NOT EXISTS control_by_series
+    ON control_points (instrument, analyte, kind, level, superseded, id);
+-- Each set of limits a series has had, with when it was set, one active per series.
+CREATE TABLE IF NOT EXISTS control_limits (
+    id INTEGER PRIMARY KEY,
+    instrument TEXT NOT NULL,
+    analyte TEXT NOT NULL,
+    kind TEXT NOT NULL,
+    level TEXT NOT NULL,
+    centre REAL NOT NULL,
+    sd REAL NOT NULL,
+    n INTEGER NOT NULL,
+    source TEXT NOT NULL,
+    first_point INTEGER,
+    last_point INTEGER,
+    set_at TEXT NOT NULL,
+    active INTEGER NOT NULL DEFAULT 1
+);
+CREATE INDEX IF NOT EXISTS limits_by_series
+    ON control_limits (instrument, analyte, kind, level, active);
 CREATE INDEX IF NOT EXISTS evaluations_by_path ON evaluations (inbox, path, version);
 CREATE INDEX IF NOT EXISTS evaluations_by_stem ON evaluations (inbox, output_stem);
 """
@@ -130,6 +171,76 @@ class NewEvaluation:
     evaluated_at: str
     document: bytes
     flagged: bytes | None
+    control_points: tuple[NewPoint, ...] = ()
+    control_limits: tuple[NewLimits, ...] = ()
+
+
+@dataclass(frozen=True, slots=True)
+class SeriesKey:
+    """What names one control chart."""
+
+    instrument: str
+    analyte: str
+    kind: str
+    level: str
+
+
+@dataclass(frozen=True, slots=True)
+class StoredPoint:
+    """One point of the control-chart log."""
+
+    id: int
+    run: str
+    seq: int | None
+    sample_id: str | None
+    acquired: str | None
+    value: float
+    unit: str
+    evaluated_at: str
+    accepted: bool = True
+
+
+@dataclass(frozen=True, slots=True)
+class StoredLimits:
+    """One set of limits of a series."""
+
+    id: int
+    centre: float
+    sd: float
+    n: int
+    source: str
+    first_point: int | None
+    last_point: int | None
+    set_at: str
+    active: bool
+
+
+@dataclass(frozen=True, slots=True)
+class NewPoint:
+    """A control observation to log with its evaluation."""
+
+    key: SeriesKey
+    run: str
+    seq: int | None
+    sample_id: str | None
+    acquired: str | None
+    value: float
+    unit: str
+    accepted: bool = True
+
+
+@dataclass(frozen=True, slots=True)
+class NewLimits:
+    """Limits to store (and make active) with an evaluation, or on request."""
+
+    key: SeriesKey
+    centre: float
+    sd: float
+    n: int
+    source: str
+    first_point: int | None
+    last_point: int | None
+    set_at: str
 
 
 _COLUMNS = (
@@ -382,5 +493,149 @@ class Ledger:
                     None if new.flagged is None else compress(new.flagged),
                 ),
             )
+            evaluation_id = int(cursor.lastrowid or 0)
             self._upsert_seen(new.inbox, new.path, Seen(new.size, new.mtime_ns, new.sha256))
-        return int(cursor.lastrowid or 0)
+            if new.version > 1:
+                self._db.execute(
+                    "UPDATE control_points SET superseded = 1 WHERE evaluation_id IN "
+                    "(SELECT id FROM evaluations WHERE inbox = ? AND path = ? AND id != ?)",
+                    (new.inbox, new.path, evaluation_id),
+                )
+            self._db.executemany(
+                "INSERT OR IGNORE INTO control_points (evaluation_id, instrument, analyte, kind, "
+                "level, run, seq, sample_id, acquired, value, unit, sha256, accepted) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                [
+                    (
+                        evaluation_id,
+                        *_key_values(point.key),
+                        point.run,
+                        point.seq,
+                        point.sample_id,
+                        point.acquired,
+                        point.value,
+                        point.unit,
+                        new.sha256,
+                        int(point.accepted),
+                    )
+                    for point in new.control_points
+                ],
+            )
+            for limits in new.control_limits:
+                self._store_limits(limits)
+        return evaluation_id
+
+    # ------------------------------------------------------------------ the control log
+
+    def _store_limits(self, limits: NewLimits) -> None:
+        self._db.execute(
+            "UPDATE control_limits SET active = 0 WHERE instrument = ? AND analyte = ? "
+            "AND kind = ? AND level = ?",
+            _key_values(limits.key),
+        )
+        self._db.execute(
+            "INSERT INTO control_limits (instrument, analyte, kind, level, centre, sd, n, "
+            "source, first_point, last_point, set_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (
+                *_key_values(limits.key),
+                limits.centre,
+                limits.sd,
+                limits.n,
+                limits.source,
+                limits.first_point,
+                limits.last_point,
+                limits.set_at,
+            ),
+        )
+
+    def set_limits(self, limits: tuple[NewLimits, ...]) -> None:
+        """Store new limits (``calwarden chart baseline``); earlier sets are kept, inactive."""
+        with self._write(durable=True):
+            for entry in limits:
+                self._store_limits(entry)
+
+    def _rows(self, sql: str, parameters: tuple[object, ...]) -> list[tuple[object, ...]]:
+        try:
+            return list(self._db.execute(sql, parameters).fetchall())
+        except sqlite3.Error as error:
+            raise LedgerError(f"{self.path}: cannot read the ledger: {error}") from None
+
+    def series_keys(self) -> list[SeriesKey]:
+        """Every series of the control log, sorted."""
+        rows = self._rows(
+            "SELECT DISTINCT instrument, analyte, kind, level FROM control_points "
+            "WHERE superseded = 0 ORDER BY instrument, analyte, kind, level",
+            (),
+        )
+        return [SeriesKey(*row) for row in rows]  # type: ignore[arg-type]
+
+    def series_points(
+        self,
+        key: SeriesKey,
+        *,
+        first: int | None = None,
+        last: int | None = None,
+        excluding: tuple[str, str] = ("", ""),
+        accepted_only: bool = False,
+    ) -> list[StoredPoint]:
+        """A series' current points in log order: all, the ``first`` N or the ``last`` N.
+
+        ``excluding`` (inbox, path) leaves out the points of that file's earlier
+        versions, which the version being judged will supersede. ``accepted_only``
+        keeps the points that met their run's own criteria (for a baseline).
+        """
+        select = (
+            "SELECT p.id, p.run, p.seq, p.sample_id, p.acquired, p.value, p.unit, "
+            "e.evaluated_at, p.accepted FROM control_points p "
+            "JOIN evaluations e ON e.id = p.evaluation_id "
+            "WHERE p.instrument = ? AND p.analyte = ? AND p.kind = ? AND p.level = ? "
+            "AND p.superseded = 0 AND NOT (e.inbox = ? AND e.path = ?)"
+            + (" AND p.accepted = 1" if accepted_only else "")
+        )
+        where = (*_key_values(key), *excluding)
+        if last is not None:
+            rows = self._rows(f"{select} ORDER BY p.id DESC LIMIT ?", (*where, last))
+            rows.reverse()
+        elif first is not None:
+            rows = self._rows(f"{select} ORDER BY p.id LIMIT ?", (*where, first))
+        else:
+            rows = self._rows(f"{select} ORDER BY p.id", where)
+        return [
+            StoredPoint(*row[:8], accepted=bool(row[8]))  # type: ignore[arg-type, misc]
+            for row in rows
+        ]
+
+    def series_size(self, key: SeriesKey, *, excluding: tuple[str, str] = ("", "")) -> int:
+        row = self._one(
+            "SELECT COUNT(*) FROM control_points p JOIN evaluations e ON e.id = p.evaluation_id "
+            "WHERE p.instrument = ? AND p.analyte = ? AND p.kind = ? AND p.level = ? "
+            "AND p.superseded = 0 AND NOT (e.inbox = ? AND e.path = ?)",
+            (*_key_values(key), *excluding),
+        )
+        return 0 if row is None else int(row[0])  # type: ignore[call-overload]
+
+    def next_point_id(self) -> int:
+        """The id the next logged point will get (points are ordered by it)."""
+        row = self._one("SELECT COALESCE(MAX(id), 0) + 1 FROM control_points", ())
+        return 1 if row is None else int(row[0])  # type: ignore[call-overload]
+
+    def limits_history(self, key: SeriesKey) -> list[StoredLimits]:
+        """Every set of limits the series has had, oldest first."""
+        rows = self._rows(
+            "SELECT id, centre, sd, n, source, first_point, last_point, set_at, active "
+            "FROM control_limits WHERE instrument = ? AND analyte = ? AND kind = ? "
+            "AND level = ? ORDER BY id",
+            _key_values(key),
+        )
+        return [
+            StoredLimits(*row[:8], active=bool(row[8]))  # type: ignore[arg-type, misc]
+            for row in rows
+        ]
+
+    def active_limits(self, key: SeriesKey) -> StoredLimits | None:
+        history = self.limits_history(key)
+        return next((limits for limits in reversed(history) if limits.active), None)
+
+
+def _key_values(key: SeriesKey) -> tuple[str, str, str, str]:
+    return (key.instrument, key.analyte, key.kind, key.level)

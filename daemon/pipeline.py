@@ -17,6 +17,7 @@ from daemon.reader import MAX_FILE_BYTES, RawTable, read_native
 from daemon.verdict_json import verdict_to_json
 from rules.errors import InputError
 from rules.evaluate import evaluate
+from rules.model import Run
 from rules.verdict import Status, Verdict
 
 
@@ -27,6 +28,7 @@ class Judgement:
     document: dict[str, Any]
     table: RawTable | None
     verdict: Verdict | None
+    run: Run | None = None
 
     @property
     def status(self) -> Status:
@@ -105,4 +107,4 @@ def judge_file(
         criteria_sha256=criteria_sha256,
         with_results=not summary_only,
     )
-    return Judgement(document, parsed.table, verdict)
+    return Judgement(document, parsed.table, verdict, parsed.run)

@@ -1,0 +1,322 @@
+"""The rolling control-chart log: a run's control observations against their history.
+
+For every judged run, the daemon logs each control observation (ICV, CCV, LCS
+and internal-standard recoveries, calibration slopes; see
+``rules/control_points.py``) in the ledger, and judges each series it touched
+by the Westgard multirules (``rules/control.py``) against the series' limits:
+
+* limits come from a baseline, the first ``baseline_points`` (default 20)
+  in-control points of the series from at least ``baseline_runs`` (default 5)
+  runs (points that failed their own run's criteria are left out, then points
+  beyond 3 SD of the first estimate, once), set when the series first has them
+  and then **locked**; ``calwarden chart baseline``
+  sets new ones, and every set is kept with its date; or
+* a fixed centre and SD from the configuration (``control.fixed``).
+
+A violation completed by one of this run's points becomes a finding in the
+run's verdict (rule id ``control.<rule>``): a warning for 1-2s, a failure for
+the rejection rules, both configurable. This is the one place where history
+enters a verdict: the verdict of a run depends on the runs judged before it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator
+
+from daemon.ledger import Ledger, NewLimits, NewPoint, SeriesKey, StoredLimits, StoredPoint
+from rules.control import (
+    BASELINE_SIZE,
+    DEFAULT_RULES,
+    WESTGARD_RULES,
+    ControlLimits,
+    ControlPoint,
+    ControlSeries,
+    LimitSource,
+    baseline_limits,
+    evaluate_group,
+)
+from rules.control_points import ControlObservation
+from rules.verdict import Severity
+
+SeriesKind = Literal["ICV", "CCV", "LCS", "ISTD", "slope"]
+_HISTORY = 40  # points of history a rule can need: 10-x across two levels needs at most 20
+_BASELINE_SEARCH = 5000  # points looked through for a baseline's runs
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class FixedLimits(_Section):
+    """A centre and SD given by the laboratory for some series."""
+
+    analyte: str = Field(description="the analyte (or internal standard) of the series")
+    kind: SeriesKind = Field(description="ICV, CCV, LCS, ISTD or slope")
+    level: str | None = Field(
+        default=None, description="the level as charts name it (e.g. '20 µg/L'); absent: every"
+    )
+    instrument: str | None = Field(default=None, description="absent: every instrument")
+    centre: float
+    sd: float = Field(gt=0)
+
+    def matches(self, key: SeriesKey) -> bool:
+        return (
+            self.analyte.casefold() == key.analyte.casefold()
+            and self.kind == key.kind
+            and (self.level is None or self.level == key.level)
+            and (self.instrument is None or self.instrument == key.instrument)
+        )
+
+
+class ControlSettings(_Section):
+    """The ``control`` section: the control-chart log, its limits and its rules."""
+
+    enabled: bool = Field(default=True, description="log control points and apply the rules")
+    baseline_points: int = Field(
+        default=BASELINE_SIZE,
+        ge=2,
+        le=1000,
+        description="limits are set from this many first points of a series (20 is "
+        "Westgard's recommendation and common practice)",
+    )
+    baseline_runs: int = Field(
+        default=5,
+        ge=1,
+        le=1000,
+        description="a baseline spans at least this many runs (common practice: limits "
+        "from one or two sequences are too narrow)",
+    )
+    rules: tuple[str, ...] = Field(
+        default=DEFAULT_RULES, description="the Westgard rules applied (ids as `calwarden rules`)"
+    )
+    warning_severity: Literal["warn", "info"] = Field(
+        default="warn", description="severity of a 1-2s finding"
+    )
+    rejection_severity: Literal["fail", "warn"] = Field(
+        default="fail", description="severity of 1-3s, 2-2s, R-4s, 4-1s and 10-x findings"
+    )
+    kinds: tuple[SeriesKind, ...] = Field(
+        default=("ICV", "CCV", "LCS", "slope"),
+        description="which series the rules judge; every series is logged and charted. "
+        "ISTD is left out by default: its points drift together within a sequence, and "
+        "each run's own istd.recovery rule judges them",
+    )
+    fixed: tuple[FixedLimits, ...] = Field(
+        default=(), description="fixed centre and SD for some series instead of a baseline"
+    )
+    chart_points: int = Field(
+        default=60, ge=5, le=1000, description="points drawn on each control chart"
+    )
+    charts: bool = Field(default=True, description="draw the charts as PNG after each run")
+
+    @field_validator("rules")
+    @classmethod
+    def _known_rules(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        unknown = sorted(set(value) - set(WESTGARD_RULES))
+        if unknown:
+            raise ValueError(
+                f"unknown control rule {unknown[0]!r}; known: {', '.join(WESTGARD_RULES)}"
+            )
+        return value
+
+
+@dataclass(frozen=True, slots=True)
+class Assessment:
+    """A run's control points, the limits they set, and the findings they raise."""
+
+    points: tuple[NewPoint, ...]
+    limits: tuple[NewLimits, ...]
+    findings: tuple[dict[str, Any], ...]
+    series: tuple[dict[str, Any], ...]  # one summary per series, for the verdict JSON
+
+
+def series_name(key: SeriesKey) -> str:
+    """How a series is named in messages: ``CCV Zn 20 µg/L``."""
+    if key.kind == "slope":
+        return f"slope {key.analyte}"
+    if key.kind == "ISTD":
+        return f"ISTD {key.analyte}"
+    return f"{key.kind} {key.analyte} {key.level}".strip()
+
+
+def _limits(stored: StoredLimits) -> ControlLimits:
+    return ControlLimits(
+        centre=stored.centre, sd=stored.sd, n=stored.n, source=LimitSource(stored.source)
+    )
+
+
+def baseline_for(
+    key: SeriesKey, points: Sequence[StoredPoint], size: int, runs: int, set_at: str
+) -> NewLimits | None:
+    """Limits from a series' first in-control points, or None while there are too few.
+
+    The baseline is the shortest start of the series holding at least ``size``
+    points from at least ``runs`` different runs: points of one run are not
+    independent (a drifting run, an internal standard across one sequence), so
+    limits from one or two runs would be too narrow.
+    """
+    seen_runs: set[str] = set()
+    chosen: list[StoredPoint] = []
+    for point in points:
+        chosen.append(point)
+        seen_runs.add(point.run)
+        if len(chosen) >= size and len(seen_runs) >= runs:
+            break
+    else:
+        return None
+    control = [ControlPoint(p.value, p.run, p.id, p.sample_id) for p in chosen]
+    baseline = baseline_limits(control, size=len(chosen), in_control_only=True)
+    if baseline.limits is None:
+        return None
+    return NewLimits(
+        key,
+        baseline.limits.centre,
+        baseline.limits.sd,
+        baseline.limits.n,
+        LimitSource.BASELINE.value,
+        chosen[0].id,
+        chosen[-1].id,
+        set_at,
+    )
+
+
+def assess(
+    ledger: Ledger,
+    settings: ControlSettings,
+    instrument: str,
+    run: str,
+    observations: Sequence[ControlObservation],
+    now: str,
+    *,
+    replacing: tuple[str, str] = ("", ""),
+) -> Assessment:
+    """Log-to-be points of one run, and the Westgard findings they complete.
+
+    ``replacing`` (inbox, path): the file whose earlier versions this run replaces;
+    their points are not history for it.
+    """
+    points = tuple(
+        NewPoint(
+            SeriesKey(instrument, o.analyte, o.kind, o.level),
+            run,
+            o.seq,
+            o.sample_id,
+            o.acquired,
+            o.value,
+            o.unit,
+            o.accepted,
+        )
+        for o in observations
+    )
+    if not settings.enabled or not points:
+        return Assessment(points if settings.enabled else (), (), (), ())
+    first_new = ledger.next_point_id()
+    new_by_key: dict[SeriesKey, list[tuple[int, NewPoint]]] = {}
+    for offset, point in enumerate(points):
+        new_by_key.setdefault(point.key, []).append((first_new + offset, point))
+
+    new_limits: list[NewLimits] = []
+    groups: dict[tuple[str, str, str], list[ControlSeries]] = {}
+    summaries: list[dict[str, Any]] = []
+    for key, fresh in new_by_key.items():
+        fixed = next((f for f in settings.fixed if f.matches(key)), None)
+        stored = ledger.active_limits(key) if fixed is None else None
+        limits: ControlLimits | None = None
+        if fixed is not None:
+            limits = ControlLimits.fixed(fixed.centre, fixed.sd)
+        elif stored is not None:
+            limits = _limits(stored)
+        else:
+            earlier = ledger.series_points(
+                key, first=_BASELINE_SEARCH, excluding=replacing, accepted_only=True
+            )
+            candidates = earlier + [
+                StoredPoint(pid, p.run, p.seq, p.sample_id, p.acquired, p.value, p.unit, now)
+                for pid, p in fresh
+                if p.accepted
+            ]
+            established = baseline_for(
+                key, candidates, settings.baseline_points, settings.baseline_runs, now
+            )
+            if established is not None:
+                new_limits.append(established)
+                limits = ControlLimits(
+                    established.centre,
+                    established.sd,
+                    established.n,
+                    LimitSource.BASELINE,
+                )
+        size = ledger.series_size(key, excluding=replacing) + len(fresh)
+        summaries.append(
+            {
+                "instrument": key.instrument,
+                "analyte": key.analyte,
+                "kind": key.kind,
+                "level": key.level,
+                "points": size,
+                "centre": limits.centre if limits else None,
+                "sd": limits.sd if limits else None,
+                "limits": limits.source.value if limits else None,
+            }
+        )
+        if limits is None or key.kind not in settings.kinds:
+            continue
+        history = ledger.series_points(key, last=_HISTORY, excluding=replacing)
+        series_points = [ControlPoint(p.value, p.run, p.id, p.sample_id) for p in history] + [
+            ControlPoint(p.value, p.run, pid, p.sample_id) for pid, p in fresh
+        ]
+        groups.setdefault((key.instrument, key.analyte, key.kind), []).append(
+            ControlSeries(series_name(key), tuple(series_points), limits)
+        )
+
+    findings: list[dict[str, Any]] = []
+    for (_, analyte, _), group in sorted(groups.items()):
+        for violation in evaluate_group(group, settings.rules):
+            completing = violation.points[-1]
+            if completing.order < first_new:
+                continue  # completed by an earlier run: that run's verdict said so
+            severity = (
+                settings.warning_severity
+                if violation.severity is Severity.WARN
+                else settings.rejection_severity
+            )
+            findings.append(
+                {
+                    "rule": f"control.{violation.rule}",
+                    "severity": severity,
+                    "analyte": analyte,
+                    "sample_id": completing.label,
+                    "seq": next(
+                        (p.seq for pid, p in _all(new_by_key) if pid == completing.order), None
+                    ),
+                    "value": round(completing.z, 4),
+                    "limit": None,
+                    "message": f"control chart {violation.rule}: {violation.message}",
+                    "affected": [],
+                }
+            )
+    return Assessment(points, tuple(new_limits), tuple(findings), tuple(summaries))
+
+
+def _all(new_by_key: dict[SeriesKey, list[tuple[int, NewPoint]]]) -> list[tuple[int, NewPoint]]:
+    return [item for items in new_by_key.values() for item in items]
+
+
+def amend(document: dict[str, Any], assessment: Assessment) -> dict[str, Any]:
+    """The verdict document with the control findings and series added."""
+    if not assessment.series and not assessment.findings:
+        return document
+    findings = [*document.get("findings", []), *assessment.findings]
+    status = document["status"]
+    if status == "pass" and any(f["severity"] == "fail" for f in assessment.findings):
+        status = "fail"
+    return {
+        **document,
+        "status": status,
+        "findings": findings,
+        "control_charts": list(assessment.series),
+    }
