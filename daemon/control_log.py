@@ -320,3 +320,107 @@ def amend(document: dict[str, Any], assessment: Assessment) -> dict[str, Any]:
         "findings": findings,
         "control_charts": list(assessment.series),
     }
+
+
+# --------------------------------------------------------------------------- commands
+
+EXPORT_COLUMNS = (
+    "instrument",
+    "analyte",
+    "kind",
+    "level",
+    "point",
+    "run",
+    "seq",
+    "sample_id",
+    "acquired",
+    "value",
+    "unit",
+    "in_control",
+    "logged_at",
+    "centre",
+    "sd",
+    "z",
+)
+
+
+@dataclass(frozen=True, slots=True)
+class SeriesFilter:
+    """Which series a chart command concerns; None matches every value."""
+
+    instrument: str | None = None
+    analyte: str | None = None
+    kind: str | None = None
+
+    def matches(self, key: SeriesKey) -> bool:
+        return (
+            (self.instrument is None or self.instrument.casefold() == key.instrument.casefold())
+            and (self.analyte is None or self.analyte.casefold() == key.analyte.casefold())
+            and (self.kind is None or self.kind.casefold() == key.kind.casefold())
+        )
+
+
+def export_rows(ledger: Ledger, chosen: SeriesFilter) -> list[list[str]]:
+    """The control log as CSV rows (header first), each point with its series' active limits."""
+    rows: list[list[str]] = [list(EXPORT_COLUMNS)]
+    for key in ledger.series_keys():
+        if not chosen.matches(key):
+            continue
+        limits = ledger.active_limits(key)
+        for point in ledger.series_points(key):
+            z = (point.value - limits.centre) / limits.sd if limits else None
+            rows.append(
+                [
+                    key.instrument,
+                    key.analyte,
+                    key.kind,
+                    key.level,
+                    str(point.id),
+                    point.run,
+                    "" if point.seq is None else str(point.seq),
+                    point.sample_id or "",
+                    point.acquired or "",
+                    repr(point.value),
+                    point.unit,
+                    "yes" if point.accepted else "no",
+                    point.evaluated_at,
+                    "" if limits is None else repr(limits.centre),
+                    "" if limits is None else repr(limits.sd),
+                    "" if z is None else f"{z:.4f}",
+                ]
+            )
+    return rows
+
+
+def recompute_baselines(
+    ledger: Ledger, settings: ControlSettings, chosen: SeriesFilter, now: str
+) -> tuple[list[NewLimits], list[str]]:
+    """New limits from each chosen series' most recent in-control points.
+
+    The baseline is the shortest end of the series holding ``baseline_points``
+    points from ``baseline_runs`` runs. Returns the limits (not yet stored) and,
+    for the series that have too few points, why.
+    """
+    found: list[NewLimits] = []
+    skipped: list[str] = []
+    for key in ledger.series_keys():
+        if not chosen.matches(key):
+            continue
+        recent = ledger.series_points(key, last=_BASELINE_SEARCH, accepted_only=True)
+        latest_first = list(reversed(recent))
+        limits = baseline_for(
+            key, latest_first, settings.baseline_points, settings.baseline_runs, now
+        )
+        if limits is None:
+            skipped.append(
+                f"{key.instrument} {series_name(key)}: {len(recent)} in-control point(s); a "
+                f"baseline needs {settings.baseline_points} from {settings.baseline_runs} runs"
+            )
+            continue
+        first, last = sorted((limits.first_point or 0, limits.last_point or 0))
+        found.append(
+            NewLimits(
+                key, limits.centre, limits.sd, limits.n, limits.source, first, last, limits.set_at
+            )
+        )
+    return found, skipped
