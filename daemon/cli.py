@@ -97,6 +97,33 @@ def _parser() -> argparse.ArgumentParser:
     status.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
     status.add_argument("--config", type=Path, help="or: the daemon's configuration")
 
+    where = argparse.ArgumentParser(add_help=False)
+    where.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
+    where.add_argument("--config", type=Path, help="or: the daemon's configuration")
+    which = argparse.ArgumentParser(add_help=False)
+    which.add_argument("--instrument", help="only this instrument's series")
+    which.add_argument("--analyte", help="only this analyte's (or internal standard's) series")
+    which.add_argument("--kind", help="only ICV, CCV, LCS, ISTD or slope series")
+    chart = commands.add_parser(
+        "chart",
+        parents=[where, which],
+        help="draw the control charts, export the control log, or set new limits",
+        description="Without an action: draw the chosen control charts as PNG files in "
+        "<out>/charts/ and say where they are.",
+    )
+    chart_commands = chart.add_subparsers(dest="chart_command", metavar="ACTION")
+    chart_commands.add_parser(
+        "export",
+        parents=[where, which],
+        help="write the control log as CSV (every point, its limits and z-score)",
+    ).add_argument("--file", type=Path, help="write here instead of stdout")
+    chart_commands.add_parser(
+        "baseline",
+        parents=[where, which],
+        help="set new limits from each series' most recent in-control points "
+        "(the earlier limits are kept, with their dates)",
+    )
+
     demo = commands.add_parser(
         "demo", help="watch a demo folder while example runs land in it, then summarise"
     )
@@ -296,30 +323,107 @@ def _watch(args: argparse.Namespace) -> int:
     return EXIT_PASS
 
 
-def _status(args: argparse.Namespace) -> int:
-    from daemon.config import plan_watch
-    from daemon.status import status_report
-    from rules.errors import ConfigError
+def _daemon_folders(args: argparse.Namespace) -> tuple[Path, Path, AppConfig] | None:
+    """The daemon's output and state folders and configuration, from --out / --config."""
+    from daemon.config import AppConfig
 
-    state_dir = (args.out or Path.cwd()).resolve() / ".calwarden"
+    out = (args.out or Path.cwd()).resolve()
+    state_dir = out / ".calwarden"
+    config = AppConfig()
     if args.config is not None:
-        config = _load_config_or_say_why(args.config)
-        if config is None:
-            return EXIT_ERROR
-        if config.watch.state_dir or config.watch.out or args.out:
-            try:
-                state_dir = plan_watch(
-                    config,
-                    config_dir=args.config.resolve().parent,
-                    out=args.out,
-                    inbox=Path.cwd() if not config.inboxes else None,
-                ).state_dir
-            except ConfigError as error:
-                print(f"calwarden: {error}", file=sys.stderr)
-                return EXIT_ERROR
+        loaded = _load_config_or_say_why(args.config)
+        if loaded is None:
+            return None
+        config = loaded
+        base = args.config.resolve().parent
+        if args.out is None and config.watch.out is not None:
+            out = (base / config.watch.out).resolve()
+            state_dir = out / ".calwarden"
+        if config.watch.state_dir is not None:
+            state_dir = (base / config.watch.state_dir).resolve()
+    return out, state_dir, config
+
+
+def _status(args: argparse.Namespace) -> int:
+    from daemon.status import status_report
+
+    folders = _daemon_folders(args)
+    if folders is None:
+        return EXIT_ERROR
+    _, state_dir, _ = folders
     text, found = status_report(state_dir)
     print(text, end="")
     return EXIT_PASS if found else EXIT_ERROR
+
+
+def _chart(args: argparse.Namespace) -> int:
+    import csv
+    from datetime import UTC, datetime
+
+    from daemon.control_log import SeriesFilter, export_rows, recompute_baselines
+    from daemon.ledger import LEDGER_NAME, Ledger, LedgerError
+
+    folders = _daemon_folders(args)
+    if folders is None:
+        return EXIT_ERROR
+    out, state_dir, config = folders
+    ledger_path = state_dir / LEDGER_NAME
+    if not ledger_path.exists():
+        print(
+            f"calwarden: no ledger at {ledger_path}: nothing has been watched there yet",
+            file=sys.stderr,
+        )
+        return EXIT_ERROR
+    chosen = SeriesFilter(args.instrument, args.analyte, args.kind)
+    try:
+        if args.chart_command == "export":
+            ledger = Ledger(ledger_path, read_only=True)
+            try:
+                rows = export_rows(ledger, chosen)
+            finally:
+                ledger.close()
+            stream = args.file.open("w", encoding="utf-8", newline="") if args.file else sys.stdout
+            try:
+                csv.writer(stream, lineterminator="\n").writerows(rows)
+            finally:
+                if args.file:
+                    stream.close()
+            if args.file:
+                print(f"{len(rows) - 1} control point(s) written to {args.file}")
+            return EXIT_PASS
+        if args.chart_command == "baseline":
+            now = datetime.now(UTC).isoformat(timespec="milliseconds")
+            ledger = Ledger(ledger_path)
+            try:
+                limits, skipped = recompute_baselines(ledger, config.control, chosen, now)
+                ledger.set_limits(tuple(limits))
+            finally:
+                ledger.close()
+            from daemon.control_log import series_name
+
+            for entry in limits:
+                print(
+                    f"{entry.key.instrument} {series_name(entry.key)}: centre "
+                    f"{entry.centre:.4g}, SD {entry.sd:.3g} from {entry.n} points"
+                )
+            for reason in skipped:
+                print(f"unchanged: {reason}")
+            print(f"{len(limits)} series given new limits, set {now}; earlier limits kept")
+            return EXIT_PASS
+        from daemon.chart_files import draw_charts
+
+        ledger = Ledger(ledger_path, read_only=True)
+        try:
+            written = draw_charts(ledger, config.control, out / "charts", chosen)
+        finally:
+            ledger.close()
+        for path in written:
+            print(path)
+        print(f"{len(written)} chart(s) in {out / 'charts'}")
+        return EXIT_PASS if written else EXIT_ERROR
+    except (LedgerError, OSError) as error:
+        print(f"calwarden: {error}", file=sys.stderr)
+        return EXIT_ERROR
 
 
 def _demo(args: argparse.Namespace) -> int:
@@ -349,6 +453,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _status(args)
     if args.command == "demo":
         return _demo(args)
+    if args.command == "chart":
+        return _chart(args)
     _parser().print_help()
     return EXIT_ERROR
 

@@ -275,10 +275,18 @@ def assess(
 
     findings: list[dict[str, Any]] = []
     for (_, analyte, _), group in sorted(groups.items()):
-        for violation in evaluate_group(group, settings.rules):
+        violations = evaluate_group(group, settings.rules)
+        rejected = {
+            (v.points[-1].series, v.points[-1].index)
+            for v in violations
+            if v.severity is Severity.FAIL
+        }
+        for violation in violations:
             completing = violation.points[-1]
             if completing.order < first_new:
                 continue  # completed by an earlier run: that run's verdict said so
+            if violation.rule == "1-2s" and (completing.series, completing.index) in rejected:
+                continue  # the rejection at the same point says more
             severity = (
                 settings.warning_severity
                 if violation.severity is Severity.WARN

@@ -64,7 +64,7 @@ class DemoError(Exception):
     """The demo cannot run (its folder is taken, the example runs are missing)."""
 
 
-def _prepare(folder: Path, settle_seconds: float) -> tuple[Path, Path]:
+def _prepare(folder: Path, settle_seconds: float, pictures: bool) -> tuple[Path, Path]:
     """An empty demo folder; an earlier demo's folder is cleared, anything else refused."""
     if not DEMO_RUNS.is_dir():
         raise DemoError(
@@ -92,7 +92,8 @@ def _prepare(folder: Path, settle_seconds: float) -> tuple[Path, Path]:
         "watch:\n"
         "  out: out\n"
         f"  settle_seconds: {settle_seconds}\n"
-        "inboxes:\n"
+        + ("" if pictures else "control:\n  charts: false\n")
+        + "inboxes:\n"
         "  - path: inbox\n"
         "    name: demo\n",
         encoding="utf-8",
@@ -139,14 +140,16 @@ def run_demo(
     *,
     say: Callable[[str], None] = print,
     settle_seconds: float = SETTLE_SECONDS,
+    pictures: bool = True,
 ) -> int:
     """Run the demo in ``folder``; 0 when every file got its verdict, 2 otherwise.
 
-    ``settle_seconds`` is shorter in tests, which need no pause for a reader.
+    ``settle_seconds`` is shorter in tests, which need no pause for a reader, and
+    ``pictures=False`` leaves out the charts (the slowest part).
     """
     folder = folder.resolve()
     try:
-        inbox, out = _prepare(folder, settle_seconds)
+        inbox, out = _prepare(folder, settle_seconds, pictures)
     except (DemoError, OSError) as error:
         print(f"calwarden: {error}", file=sys.stderr)
         return 2
@@ -183,6 +186,8 @@ def run_demo(
                     return 2
                 tally[outcome.status] = tally.get(outcome.status, 0) + 1
                 say("   " + describe(outcome))
+            say("\n(drawing the calibration pictures and control charts)")
+            watcher.wait_pictures(_WAIT_SECONDS)
         finally:
             watcher.stop()
     finally:
@@ -195,6 +200,7 @@ def run_demo(
     say(f"  verdicts, flagged copies, reports: {out}")
     say(f"  ledger and JSON log:               {plan.state_dir} ({LOG_NAME})")
     say(f"  the failing run's report:          {out / 'bwl-demo-1202-metals.report.txt'}")
+    say(f"  control charts (PNG):              {out / 'charts'}")
     say(f"  status any time:                   calwarden status --out {out}")
     say(f"  watch it yourself:                 calwarden watch --config {config_path}")
     say(

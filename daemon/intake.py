@@ -27,6 +27,7 @@ from typing import Any
 
 import structlog
 
+from daemon.chart_files import calibration_picture_name
 from daemon.config import AppConfig, Inbox
 from daemon.control_log import Assessment, amend, assess
 from daemon.ledger import Evaluation, Ledger, NewEvaluation, Seen, SeriesKey
@@ -180,6 +181,14 @@ class Intake:
         assert stem is not None
         out_folder = inbox.out_dir / PurePosixPath(stem).parent
         name = PurePosixPath(stem).name
+        if inbox.config.control.charts and document.get("calibrations"):
+            # Drawn when the daemon is idle (see Watcher); the report names them now.
+            document = {
+                **document,
+                "pictures": [
+                    calibration_picture_name(name, analyte) for analyte in document["calibrations"]
+                ],
+            }
         try:
             if previous is not None:
                 self._archive(inbox, previous, out_folder, name)

@@ -68,7 +68,8 @@ CREATE TABLE IF NOT EXISTS evaluations (
     calwarden_version TEXT NOT NULL,
     evaluated_at TEXT NOT NULL,
     document BLOB,
-    flagged BLOB
+    flagged BLOB,
+    pictures_drawn INTEGER NOT NULL DEFAULT 0
 );
 CREATE INDEX IF NOT EXISTS evaluations_by_content ON evaluations (inbox, sha256);
 -- The control-chart log: every control observation of every judged run, one series
@@ -524,6 +525,21 @@ class Ledger:
             for limits in new.control_limits:
                 self._store_limits(limits)
         return evaluation_id
+
+    def pictures_pending(self, limit: int = 1) -> list[tuple[int, str, str]]:
+        """Judged runs whose calibration pictures are not drawn yet: (id, inbox, stem)."""
+        rows = self._rows(
+            "SELECT id, inbox, output_stem FROM evaluations WHERE pictures_drawn = 0 "
+            "AND outcome IN ('pass', 'fail') ORDER BY id LIMIT ?",
+            (limit,),
+        )
+        return [(int(r[0]), str(r[1]), str(r[2])) for r in rows]  # type: ignore[call-overload]
+
+    def mark_pictures_drawn(self, evaluation_id: int) -> None:
+        with self._write():
+            self._db.execute(
+                "UPDATE evaluations SET pictures_drawn = 1 WHERE id = ?", (evaluation_id,)
+            )
 
     # ------------------------------------------------------------------ the control log
 

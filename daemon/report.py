@@ -158,6 +158,35 @@ def _table(rows: Sequence[tuple[str, ...]]) -> list[str]:
     ]
 
 
+def _charts(document: dict[str, Any]) -> list[str]:
+    """The control series the run added to, and the pictures next to this report."""
+    lines: list[str] = []
+    series = document.get("control_charts") or []
+    if series:
+        lines += ["", "Control charts (this run's points joined these series)"]
+        rows = [("series", "points", "centre", "SD", "limits")]
+        for entry in series:
+            name = " ".join(
+                part for part in (entry["kind"], entry["analyte"], entry["level"]) if part
+            )
+            centre, sd = entry.get("centre"), entry.get("sd")
+            rows.append(
+                (
+                    f"{entry['instrument']} {name}",
+                    str(entry["points"]),
+                    "-" if centre is None else f"{centre:.4g}",
+                    "-" if sd is None else f"{sd:.3g}",
+                    entry.get("limits") or "not yet",
+                )
+            )
+        lines += ["  " + line for line in _table(rows)]
+    pictures = document.get("pictures") or []
+    if pictures:
+        lines += ["", "Pictures (calibration curve and residuals, per analyte; beside this report)"]
+        lines += [f"  {name}" for name in pictures]
+    return lines
+
+
 def render(document: dict[str, Any], *, full: bool = True) -> str:
     """The report; ``full=False`` gives the terminal summary (no calibration or result tables)."""
     source = document.get("source", {})
@@ -178,6 +207,6 @@ def render(document: dict[str, Any], *, full: bool = True) -> str:
     if document["status"] != "error":
         lines += _reruns(document) + _findings(document)
         if full:
-            lines += _calibrations(document) + _results(document)
+            lines += _calibrations(document) + _results(document) + _charts(document)
     lines += ["", str(document.get("caution", ""))]
     return "\n".join(lines) + "\n"

@@ -28,6 +28,7 @@ import fnmatch
 import hashlib
 import heapq
 import itertools
+import json
 import os
 import queue
 import stat
@@ -35,7 +36,7 @@ import threading
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 
 import structlog
 from watchdog.events import FileSystemEvent, FileSystemEventHandler
@@ -43,9 +44,10 @@ from watchdog.observers import Observer
 from watchdog.observers.api import BaseObserver
 from watchdog.observers.polling import PollingObserver
 
+from daemon.chart_files import CHARTS_FOLDER, draw_calibrations, draw_series
 from daemon.config import Inbox, WatchPlan
 from daemon.intake import Intake, Outcome, OutputError
-from daemon.ledger import LEDGER_NAME, Ledger, LedgerError
+from daemon.ledger import LEDGER_NAME, Ledger, LedgerError, SeriesKey
 from daemon.lock import StateLock
 from daemon.outputs import is_leftover_temporary
 from daemon.reader import MAX_FILE_BYTES
@@ -57,6 +59,7 @@ _HINT_EVENTS = frozenset({"created", "modified", "moved", "closed"})
 _MAX_WAIT = 1.0  # seconds the worker sleeps at most, so that a stop is seen promptly
 _LOCKED_BACKOFF_CAP = 30.0
 _UNREADABLE_ATTEMPTS = 5
+_DRAW_SLICE = 0.5  # seconds a picture may take; none is started closer to a file's turn
 
 
 class StartError(Exception):
@@ -130,6 +133,8 @@ class Watcher:
         self._thread: threading.Thread | None = None
         self._unreachable: set[str] = set()
         self._observer_failing = False
+        self._stale_charts: dict[SeriesKey, None] = {}  # ordered: drawn oldest first
+        self._pictures_pending = True  # checked in the ledger at start
 
     # ------------------------------------------------------------------ life cycle
 
@@ -186,6 +191,15 @@ class Watcher:
                 return False
         return False
 
+    def wait_pictures(self, timeout: float) -> bool:
+        """Block until every pending picture is drawn (for the demo and tests)."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline and not self._finished.is_set():
+            if not self._due and not self._pictures_to_draw():
+                return True
+            time.sleep(0.05)
+        return False
+
     @property
     def observers(self) -> list[BaseObserver]:
         return list(self._observers)
@@ -204,7 +218,8 @@ class Watcher:
                 now = time.monotonic()
                 wake = min(next_rescan, next_check, self._due[0].when if self._due else now + 60)
                 self._idle.set() if not self._due and self._hints.empty() else self._idle.clear()
-                self._take_hints(max(0.0, min(wake - now, _MAX_WAIT)))
+                wait = 0.0 if self._pictures_to_draw() else min(wake - now, _MAX_WAIT)
+                self._take_hints(max(0.0, wait))
                 now = time.monotonic()
                 if now >= next_check:
                     self._check_observers()
@@ -213,6 +228,8 @@ class Watcher:
                     self._scan_all("periodic")
                     next_rescan = time.monotonic() + self.settings.rescan_seconds
                 self._settle_due()
+                if self._quiet():
+                    self._draw_one()
         except (LedgerError, OutputError) as error:
             self._fail(str(error))
         except Exception as error:  # a bug of ours: stop loudly rather than run half-broken
@@ -346,11 +363,68 @@ class Watcher:
             candidate.inbox, candidate.path, data, sha256, size, mtime_ns
         )
         self.outcomes += 1
+        self._stale_charts.update(dict.fromkeys(outcome.series))
+        if outcome.verdict_path is not None:
+            self._pictures_pending = True
         if self._on_outcome is not None and outcome.status != "unchanged":
             try:
                 self._on_outcome(outcome)
             except Exception as error:  # a listener's bug must not stop the watching
                 log.error("outcome_listener_failed", error=repr(error))
+
+    # ------------------------------------------------------------------ pictures
+
+    def _pictures_to_draw(self) -> bool:
+        charts_on = self.plan.inboxes[0].config.control.charts
+        return charts_on and (self._pictures_pending or bool(self._stale_charts))
+
+    def _quiet(self) -> bool:
+        """Nothing to judge soon: time for pictures, which never delay a verdict."""
+        if not self._hints.empty():
+            return False
+        return not self._due or self._due[0].when > time.monotonic() + _DRAW_SLICE
+
+    def _draw_one(self) -> None:
+        """Draw one picture's worth: a run's calibrations, or one stale control chart.
+
+        Pictures are derived from the ledger, so a failure to draw is logged and the
+        daemon goes on; a run's calibration pictures are marked drawn only once written,
+        so a restart draws what a stop left undrawn.
+        """
+        control = self.plan.inboxes[0].config.control
+        if not control.charts:
+            return
+        assert self._ledger is not None
+        try:
+            if self._pictures_pending:
+                pending = self._ledger.pictures_pending(limit=1)
+                if not pending:
+                    self._pictures_pending = False
+                else:
+                    self._draw_calibrations(*pending[0])
+                    return
+            if self._stale_charts:
+                key = next(iter(self._stale_charts))
+                try:
+                    draw_series(self._ledger, control, self.plan.out / CHARTS_FOLDER, (key,))
+                finally:
+                    self._stale_charts.pop(key, None)  # after drawing: wait_pictures sees it
+        except LedgerError:
+            raise
+        except Exception as error:  # a picture is never worth stopping the daemon for
+            log.error("picture_failed", error=repr(error))
+
+    def _draw_calibrations(self, evaluation_id: int, inbox_name: str, stem: str) -> None:
+        assert self._ledger is not None
+        inbox = next((i for i in self.plan.inboxes if i.name == inbox_name), None)
+        try:
+            if inbox is not None:
+                document = json.loads(self._ledger.outputs_of(evaluation_id)[0])
+                pure = PurePosixPath(stem)
+                draw_calibrations(document, inbox.out_dir / pure.parent, pure.name)
+        finally:
+            # Marked even when drawing failed (and said so): never retried in a loop.
+            self._ledger.mark_pictures_drawn(evaluation_id)
 
     # ------------------------------------------------------------------ scans
 

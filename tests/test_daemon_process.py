@@ -480,7 +480,7 @@ def demo_runs(tmp_path_factory: pytest.TempPathFactory) -> DemoRuns:
     shutil.copyfile(PASSING, folder / "inbox" / "left-by-the-first-demo.csv")
     # The second run in-process with a short settle time: the folder handling is the same.
     printed: list[str] = []
-    code = run_demo(folder, say=printed.append, settle_seconds=0.2)
+    code = run_demo(folder, say=printed.append, settle_seconds=0.2, pictures=False)
     second = subprocess.CompletedProcess(["demo"], code, "\n".join(printed) + "\n", "")
     return DemoRuns(folder, first, first_verdicts, second)
 

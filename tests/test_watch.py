@@ -19,7 +19,7 @@ import pytest
 from structlog.testing import capture_logs
 from watchdog.observers.polling import PollingObserver
 
-from daemon.config import AppConfig, WatchPlan, build_config, plan_watch
+from daemon.config import WatchPlan, build_config, plan_watch
 from daemon.intake import Outcome
 from daemon.ledger import LEDGER_NAME, Ledger
 from daemon.watcher import StartError, Watcher
@@ -114,9 +114,15 @@ def out(tmp_path: Path) -> Path:
     return folder
 
 
-def plan_for(inbox: Path, out: Path, *, settle: float = SETTLE, **watch: object) -> WatchPlan:
-    """A plan for one inbox; ``watch`` holds extra keys of the configuration's watch section."""
-    config = build_config({"watch": watch}, "test") if watch else AppConfig()
+def plan_for(
+    inbox: Path, out: Path, *, settle: float = SETTLE, pictures: bool = False, **watch: object
+) -> WatchPlan:
+    """A plan for one inbox; ``watch`` holds extra keys of the configuration's watch section.
+
+    Pictures are off unless asked for: they are drawn in idle moments, so they would
+    make the output folder's contents depend on timing.
+    """
+    config = build_config({"watch": watch, "control": {"charts": pictures}}, "test")
     return plan_watch(config, inbox=inbox, out=out, settle_seconds=settle)
 
 
@@ -449,6 +455,7 @@ def test_two_inboxes_write_to_their_own_output_folders(
     config = build_config(
         {
             "watch": {"out": "out", "settle_seconds": SETTLE},
+            "control": {"charts": False},
             "inboxes": [
                 {"path": "icpms", "name": "metals"},
                 {"path": "lcms", "name": "herbicides"},
@@ -497,3 +504,21 @@ def test_state_lock_is_released_when_the_watcher_stops(
     second = start(plan)
     assert second.watcher.wait_idle(DEADLINE)
     assert second.watcher.fault is None
+
+
+def test_pictures_are_drawn_when_the_daemon_is_idle(
+    start: Callable[[WatchPlan], Running], inbox: Path, out: Path
+) -> None:
+    """With pictures on, each judged run gets a calibration picture per analyte and charts."""
+    running = start(plan_for(inbox, out, pictures=True))
+    (inbox / "run.csv").write_bytes(PASSING)
+    running.wait_outcomes(1)
+    assert running.watcher.wait_pictures(60)
+    document = json.loads((out / "run.verdict.json").read_text(encoding="utf-8"))
+    analytes = sorted(document["calibrations"])
+    pictures = sorted(p.name for p in out.glob("run.calibration-*.png"))
+    assert pictures == sorted(f"run.calibration-{a}.png" for a in analytes)
+    assert document["pictures"] == [f"run.calibration-{a}.png" for a in document["calibrations"]]
+    charts = list((out / "charts").rglob("*.png"))
+    assert len(charts) == len(document["control_charts"])
+    assert all(p.read_bytes().startswith(b"\x89PNG") for p in [*charts, out / pictures[0]])

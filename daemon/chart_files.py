@@ -1,0 +1,162 @@
+"""Pictures on disk: each control series as a PNG, each run's calibrations as PNGs.
+
+The drawing itself is ``daemon/charts.py`` (plain data in, PNG bytes out);
+this module reads the ledger and the verdicts, decides each point's status,
+and writes the files atomically. matplotlib is imported only when a picture
+is drawn.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterable, Mapping
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from daemon.control_log import ControlSettings, SeriesFilter, series_name
+from daemon.ledger import Ledger, SeriesKey, StoredLimits
+from daemon.outputs import atomic_write
+from rules.control import ControlLimits, ControlPoint, ControlSeries, LimitSource, evaluate_group
+from rules.verdict import Severity
+
+CHARTS_FOLDER = "charts"
+_HISTORY = 1000  # points read for one chart (it draws the last chart_points of them)
+_UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
+
+
+def safe_name(text: str) -> str:
+    """A file-name-safe form of an analyte, level or instrument name."""
+    return _UNSAFE.sub("_", text.replace("µ", "u")).strip("_") or "_"
+
+
+def chart_path(charts_dir: Path, key: SeriesKey) -> Path:
+    """``charts/<instrument>/<analyte>--<kind>[--<level>].png``."""
+    parts = [safe_name(key.analyte), key.kind]
+    if key.level and key.kind not in ("ISTD", "slope"):
+        parts.append(safe_name(key.level))
+    return charts_dir / safe_name(key.instrument) / ("--".join(parts) + ".png")
+
+
+def calibration_picture_name(stem: str, analyte: str) -> str:
+    return f"{stem}.calibration-{safe_name(analyte)}.png"
+
+
+def _when(text: str | None) -> datetime | None:
+    if not text:
+        return None
+    try:
+        moment = datetime.fromisoformat(text)
+    except ValueError:
+        return None
+    # One axis cannot mix zone-aware and naive times: aware ones are shown in UTC.
+    return moment.astimezone(UTC).replace(tzinfo=None) if moment.tzinfo else moment
+
+
+def _limits_note(stored: StoredLimits | None, fixed: bool) -> str:
+    if fixed:
+        return "fixed centre and SD from the configuration"
+    if stored is None:
+        return ""
+    return f"limits from {stored.n} baseline points, set {stored.set_at[:10]}"
+
+
+def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> Any:
+    """The :class:`daemon.charts.ControlChart` of one series, as the ledger has it now."""
+    from daemon.charts import BASELINE, IN_CONTROL, REJECTION, WARNING, ChartPoint, ControlChart
+
+    points = ledger.series_points(key, last=_HISTORY)
+    fixed = next((f for f in settings.fixed if f.matches(key)), None)
+    stored = None if fixed else ledger.active_limits(key)
+    limits: ControlLimits | None = None
+    if fixed is not None:
+        limits = ControlLimits.fixed(fixed.centre, fixed.sd)
+    elif stored is not None:
+        limits = ControlLimits(stored.centre, stored.sd, stored.n, LimitSource(stored.source))
+
+    status = [IN_CONTROL] * len(points)
+    rules: list[list[str]] = [[] for _ in points]
+    if stored is not None and stored.first_point is not None and stored.last_point is not None:
+        for index, point in enumerate(points):
+            if point.accepted and stored.first_point <= point.id <= stored.last_point:
+                status[index] = BASELINE
+    if limits is not None and points and key.kind in settings.kinds:
+        series = ControlSeries(
+            series_name(key),
+            tuple(ControlPoint(p.value, p.run, p.id, p.sample_id) for p in points),
+            limits,
+        )
+        for violation in evaluate_group((series,), settings.rules):
+            worst = REJECTION if violation.severity is Severity.FAIL else WARNING
+            for ref in violation.points:
+                if status[ref.index] != REJECTION:
+                    status[ref.index] = worst
+            last = violation.points[-1].index
+            if violation.rule not in rules[last]:
+                rules[last].append(violation.rule)
+    for names in rules:
+        if len(names) > 1 and "1-2s" in names:
+            names.remove("1-2s")  # the warning says nothing a rejection at the point does not
+    unit = points[-1].unit if points else ""
+    unit_label = "recovery (%)" if unit == "%" else f"slope ({unit})"
+    level = f" {key.level}" if key.level and key.kind not in ("ISTD", "slope") else ""
+    return ControlChart(
+        title=f"{key.instrument} · {key.analyte} · {key.kind}{level}",
+        unit_label=unit_label,
+        # Drawn in time order: a backlog or a re-judged file may have logged points late.
+        points=tuple(
+            sorted(
+                (
+                    ChartPoint(
+                        when=_when(p.acquired) or _when(p.evaluated_at),
+                        value=p.value,
+                        run=p.run,
+                        status=status[i],
+                        rules=tuple(rules[i]),
+                    )
+                    for i, p in enumerate(points)
+                ),
+                key=lambda point: point.when or datetime.max,
+            )
+        ),
+        centre=None if limits is None else limits.centre,
+        sd=None if limits is None else limits.sd,
+        limits_note=_limits_note(stored, fixed is not None),
+        last_n=settings.chart_points,
+        baseline_size=settings.baseline_points,
+    )
+
+
+def draw_series(
+    ledger: Ledger, settings: ControlSettings, charts_dir: Path, keys: Iterable[SeriesKey]
+) -> list[Path]:
+    """Draw the given series' charts; returns the files written."""
+    from daemon.charts import control_chart_png
+
+    written = []
+    for key in keys:
+        path = chart_path(charts_dir, key)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        atomic_write(path, control_chart_png(build_chart(ledger, settings, key)))
+        written.append(path)
+    return written
+
+
+def draw_charts(
+    ledger: Ledger, settings: ControlSettings, charts_dir: Path, chosen: SeriesFilter
+) -> list[Path]:
+    """Draw every chosen series of the log (``calwarden chart``)."""
+    keys = [key for key in ledger.series_keys() if chosen.matches(key)]
+    return draw_series(ledger, settings, charts_dir, keys)
+
+
+def draw_calibrations(document: Mapping[str, Any], out_folder: Path, stem: str) -> list[Path]:
+    """One picture per calibration of a verdict: the curve over its standards, the residuals."""
+    from daemon.charts import calibration_png
+
+    written = []
+    for analyte, calibration in (document.get("calibrations") or {}).items():
+        path = out_folder / calibration_picture_name(stem, analyte)
+        atomic_write(path, calibration_png(analyte, calibration))
+        written.append(path)
+    return written
