@@ -24,6 +24,23 @@ EXIT_FAULT = (
 )
 
 
+def _chart_options(default: object) -> argparse.ArgumentParser:
+    """The options of ``chart`` and its actions; accepted before or after the action."""
+    options = argparse.ArgumentParser(add_help=False)
+    options.add_argument(
+        "--out", type=Path, default=default, help="the daemon's output folder (default: here)"
+    )
+    options.add_argument(
+        "--config", type=Path, default=default, help="or: the daemon's configuration"
+    )
+    options.add_argument("--instrument", default=default, help="only this instrument's series")
+    options.add_argument(
+        "--analyte", default=default, help="only this analyte's (or internal standard's) series"
+    )
+    options.add_argument("--kind", default=default, help="only ICV, CCV, LCS, ISTD or slope series")
+    return options
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="calwarden",
@@ -97,16 +114,10 @@ def _parser() -> argparse.ArgumentParser:
     status.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
     status.add_argument("--config", type=Path, help="or: the daemon's configuration")
 
-    where = argparse.ArgumentParser(add_help=False)
-    where.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
-    where.add_argument("--config", type=Path, help="or: the daemon's configuration")
-    which = argparse.ArgumentParser(add_help=False)
-    which.add_argument("--instrument", help="only this instrument's series")
-    which.add_argument("--analyte", help="only this analyte's (or internal standard's) series")
-    which.add_argument("--kind", help="only ICV, CCV, LCS, ISTD or slope series")
+    chart_options = _chart_options(argparse.SUPPRESS)  # an action keeps what came before it
     chart = commands.add_parser(
         "chart",
-        parents=[where, which],
+        parents=[_chart_options(None)],
         help="draw the control charts, export the control log, or set new limits",
         description="Without an action: draw the chosen control charts as PNG files in "
         "<out>/charts/ and say where they are.",
@@ -114,12 +125,12 @@ def _parser() -> argparse.ArgumentParser:
     chart_commands = chart.add_subparsers(dest="chart_command", metavar="ACTION")
     chart_commands.add_parser(
         "export",
-        parents=[where, which],
+        parents=[chart_options],
         help="write the control log as CSV (every point, its limits and z-score)",
     ).add_argument("--file", type=Path, help="write here instead of stdout")
     chart_commands.add_parser(
         "baseline",
-        parents=[where, which],
+        parents=[chart_options],
         help="set new limits from each series' most recent in-control points "
         "(the earlier limits are kept, with their dates)",
     )

@@ -90,9 +90,12 @@ CREATE TABLE IF NOT EXISTS control_points (
     unit TEXT NOT NULL,
     sha256 TEXT NOT NULL,
     accepted INTEGER NOT NULL DEFAULT 1,
-    superseded INTEGER NOT NULL DEFAULT 0,
-    UNIQUE (sha256, instrument, analyte, kind, level, seq)
+    superseded INTEGER NOT NULL DEFAULT 0
 );
+-- Unique among current points only: a file reverted to an earlier version's content
+-- logs its points again once the earlier ones are superseded.
+CREATE UNIQUE INDEX IF NOT EXISTS one_current_point
+    ON control_points (sha256, instrument, analyte, kind, level, seq) WHERE superseded = 0;
 CREATE INDEX IF NOT EXISTS control_by_series
     ON control_points (instrument, analyte, kind, level, superseded, id);
 -- Each set of limits a series has had, with when it was set, one active per series.

@@ -327,11 +327,6 @@ def test_new_version_supersedes_the_earlier_versions_points(lab: Callable[..., L
     assert sum(len(one.ledger.series_points(k)) for k in one.ledger.series_keys()) == 20
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="control_points' UNIQUE (sha256, series, seq) ignores the points of a version whose "
-    "content returns to an earlier version's: the earlier rows exist, superseded",
-)
 def test_version_reverted_to_earlier_content_has_its_points(lab: Callable[..., Lab]) -> None:
     """A file given back its first content, judged as version 3, has that content's points."""
     one = lab()
@@ -672,11 +667,6 @@ def test_export_filters_by_instrument(
     assert len(everything) == point_count(one.ledger_path) > len(rows)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="chart and its actions share argparse parents: the action's defaults (None) "
-    "overwrite --out/--analyte given before the action",
-)
 def test_options_before_the_action_apply_to_it(
     lab: Callable[..., Lab],
     capsys: pytest.CaptureFixture[str],
