@@ -31,6 +31,8 @@ from daemon.ledger import Ledger, NewLimits, NewPoint, SeriesKey, StoredLimits, 
 from rules.control import (
     BASELINE_SIZE,
     DEFAULT_RULES,
+    EWMA_LAMBDA,
+    EWMA_WIDTH,
     WESTGARD_RULES,
     ControlLimits,
     ControlPoint,
@@ -38,6 +40,7 @@ from rules.control import (
     LimitSource,
     baseline_limits,
     evaluate_group,
+    ewma_violations,
 )
 from rules.control_points import ControlObservation
 from rules.verdict import Severity
@@ -107,6 +110,20 @@ class ControlSettings(_Section):
     )
     fixed: tuple[FixedLimits, ...] = Field(
         default=(), description="fixed centre and SD for some series instead of a baseline"
+    )
+    ewma: bool = Field(
+        default=False,
+        description="also judge each series by an EWMA chart, for slow drifts "
+        "(Roberts 1959; exact limits as in Lucas & Saccucci 1990)",
+    )
+    ewma_lambda: float = Field(
+        default=EWMA_LAMBDA, gt=0, le=1, description="weight of the newest point (0.2)"
+    )
+    ewma_width: float = Field(
+        default=EWMA_WIDTH, gt=0, le=10, description="limits at this many EWMA SDs (3)"
+    )
+    ewma_severity: Literal["warn", "fail"] = Field(
+        default="warn", description="severity of an ewma finding"
     )
     chart_points: int = Field(
         default=60, ge=5, le=1000, description="points drawn on each control chart"
@@ -275,7 +292,12 @@ def assess(
 
     findings: list[dict[str, Any]] = []
     for (_, analyte, _), group in sorted(groups.items()):
-        violations = evaluate_group(group, settings.rules)
+        violations = list(evaluate_group(group, settings.rules))
+        if settings.ewma:
+            for series in group:
+                violations += ewma_violations(
+                    series, settings.ewma_lambda, settings.ewma_width, Severity.WARN
+                )
         rejected = {
             (v.points[-1].series, v.points[-1].index)
             for v in violations
@@ -287,11 +309,12 @@ def assess(
                 continue  # completed by an earlier run: that run's verdict said so
             if violation.rule == "1-2s" and (completing.series, completing.index) in rejected:
                 continue  # the rejection at the same point says more
-            severity = (
-                settings.warning_severity
-                if violation.severity is Severity.WARN
-                else settings.rejection_severity
-            )
+            if violation.rule == "ewma":
+                severity: str = settings.ewma_severity
+            elif violation.severity is Severity.WARN:
+                severity = settings.warning_severity
+            else:
+                severity = settings.rejection_severity
             findings.append(
                 {
                     "rule": f"control.{violation.rule}",

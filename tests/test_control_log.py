@@ -707,3 +707,23 @@ def test_baseline_command_sets_new_limits_and_keeps_the_old(
     assert history[1].centre == pytest.approx(latest.mean(), rel=1e-12)
     assert history[1].sd == pytest.approx(latest.std(ddof=1), rel=1e-9)
     assert one.ledger.active_limits(ZN_CCV) == history[1]
+
+
+def _drifting_lab(lab: Callable[..., Lab], ewma: bool) -> list[Outcome]:
+    """Runs whose Zn CCVs all sit 1.5 SD above fixed limits: a drift no 1-3s sees."""
+    first, _ = zn_ccv_values(metals_run("probe"))
+    fixed = {"analyte": "Zn", "kind": "CCV", "centre": first - 3.0, "sd": 2.0}
+    one = lab({"fixed": [fixed], "rules": ["1-3s"], "ewma": ewma}, name=f"ewma-{ewma}")
+    return one.judge_runs([metals_run(f"DRIFT-{i}") for i in range(3)])
+
+
+def test_ewma_reports_a_slow_drift_when_switched_on(lab: Callable[..., Lab]) -> None:
+    """With control.ewma on, points steadily above the centre give ewma warnings."""
+    findings = [f for o in _drifting_lab(lab, True) for f in control_findings(verdict(o))]
+    assert findings and {f["rule"] for f in findings} == {"control.ewma"}
+    assert {f["severity"] for f in findings} == {"warn"}
+
+
+def test_ewma_is_off_by_default(lab: Callable[..., Lab]) -> None:
+    """Without control.ewma the same drift raises nothing under 1-3s alone."""
+    assert not [f for o in _drifting_lab(lab, False) for f in control_findings(verdict(o))]
