@@ -480,16 +480,17 @@ class Watcher:
         return found
 
     def _sweep_temporary_files(self) -> None:
-        """Remove half-written outputs a killed daemon left (never anything else)."""
-        for inbox in self.plan.inboxes:
-            if not inbox.out_dir.is_dir():
+        """Remove half-written outputs and pictures a killed daemon left (nothing else)."""
+        folders = {self.plan.out, *(inbox.out_dir for inbox in self.plan.inboxes)}
+        for top in folders:
+            if not top.is_dir():
                 continue
-            folders = inbox.out_dir.rglob("*") if inbox.recursive else ()
-            for folder in (inbox.out_dir, *(p for p in folders if p.is_dir())):
-                for entry in os.scandir(folder):
-                    if entry.is_file() and is_leftover_temporary(entry.name):
-                        Path(entry.path).unlink(missing_ok=True)
-                        log.info("temporary_file_removed", path=entry.path)
+            for folder, _, names in os.walk(top):
+                for name in names:
+                    if is_leftover_temporary(name):
+                        path = Path(folder) / name
+                        path.unlink(missing_ok=True)
+                        log.info("temporary_file_removed", path=str(path))
 
     # ------------------------------------------------------------------ observers
 
