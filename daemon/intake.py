@@ -2,17 +2,21 @@
 
 The order of the steps is what makes a crash at any instant harmless:
 
-1. the file's bytes are hashed; content already judged is not judged again;
-2. the file is judged from exactly those bytes;
+1. the file's bytes are hashed; the same bytes at the same path are nothing new,
+   and a new name with content already judged is recorded as a duplicate;
+2. the file is judged from exactly those bytes, and its control observations are
+   judged against the control-chart log (only read here);
 3. when it is a new version of a known file, the earlier version's outputs are
    written under a suffixed name from the ledger's copy of them;
 4. its outputs are written, each atomically, the verdict JSON last;
-5. the evaluation is recorded in the ledger, durably.
+5. the evaluation, its control points and any limits they set are recorded in
+   the ledger in one durable transaction.
 
 A crash before step 5 leaves the file unrecorded, so the next start judges
-it again and writes the same outputs over the old ones; a crash after it
-leaves a complete record. Either way every file ends with one current
-verdict. The input file is only ever read.
+it again (against the same history) and writes the same outputs over the old
+ones; a crash after it leaves a complete record. Either way every file ends
+with one current verdict. The input file is only ever read. Pictures are not
+part of this: the watcher draws them later, from the ledger.
 """
 
 from __future__ import annotations
