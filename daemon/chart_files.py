@@ -94,6 +94,12 @@ def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> An
             last = violation.points[-1].index
             if violation.rule not in rules[last]:
                 rules[last].append(violation.rule)
+    for index, point in enumerate(points):
+        if not point.accepted:
+            # It failed its own run's criteria (a CCV out of its limits, say): a reader
+            # must not take it for an in-control point.
+            status[index] = REJECTION
+            rules[index].insert(0, "failed in its run")
     for names in rules:
         if len(names) > 1 and "1-2s" in names:
             names.remove("1-2s")  # the warning says nothing a rejection at the point does not
@@ -121,7 +127,11 @@ def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> An
         ),
         centre=None if limits is None else limits.centre,
         sd=None if limits is None else limits.sd,
-        limits_note=_limits_note(stored, fixed is not None),
+        limits_note=_limits_note(stored, fixed is not None)
+        or (
+            f"a baseline needs {settings.baseline_points} in-control points from "
+            f"{settings.baseline_runs} runs"
+        ),
         last_n=settings.chart_points,
         baseline_size=settings.baseline_points,
     )
