@@ -530,13 +530,25 @@ class Ledger:
         return evaluation_id
 
     def pictures_pending(self, limit: int = 1) -> list[tuple[int, str, str]]:
-        """Judged runs whose calibration pictures are not drawn yet: (id, inbox, stem)."""
+        """Judged runs whose calibration pictures are not drawn yet, newest first."""
         rows = self._rows(
             "SELECT id, inbox, output_stem FROM evaluations WHERE pictures_drawn = 0 "
-            "AND outcome IN ('pass', 'fail') ORDER BY id LIMIT ?",
+            "AND outcome IN ('pass', 'fail') ORDER BY id DESC LIMIT ?",
             (limit,),
         )
         return [(int(r[0]), str(r[1]), str(r[2])) for r in rows]  # type: ignore[call-overload]
+
+    def skip_old_pictures(self, keep: int) -> int:
+        """Mark all but the newest ``keep`` runs' pending pictures as not to be drawn."""
+        with self._write():
+            cursor = self._db.execute(
+                "UPDATE evaluations SET pictures_drawn = 2 WHERE pictures_drawn = 0 "
+                "AND outcome IN ('pass', 'fail') AND id NOT IN (SELECT id FROM evaluations "
+                "WHERE pictures_drawn = 0 AND outcome IN ('pass', 'fail') "
+                "ORDER BY id DESC LIMIT ?)",
+                (keep,),
+            )
+        return int(cursor.rowcount)
 
     def mark_pictures_drawn(self, evaluation_id: int) -> None:
         with self._write():

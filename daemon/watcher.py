@@ -59,6 +59,7 @@ _HINT_EVENTS = frozenset({"created", "modified", "moved", "closed"})
 _MAX_WAIT = 1.0  # seconds the worker sleeps at most, so that a stop is seen promptly
 _LOCKED_BACKOFF_CAP = 30.0
 _UNREADABLE_ATTEMPTS = 5
+_PICTURE_BACKLOG = 50  # runs whose calibration pictures are drawn after a backlog
 _DRAW_SLICE = 0.5  # seconds a picture may take; none is started closer to a file's turn
 
 
@@ -397,7 +398,13 @@ class Watcher:
         assert self._ledger is not None
         try:
             if self._pictures_pending:
-                pending = self._ledger.pictures_pending(limit=1)
+                pending = self._ledger.pictures_pending(limit=_PICTURE_BACKLOG + 1)
+                if len(pending) > _PICTURE_BACKLOG:
+                    # A backlog of old files (a first start on a full export folder) would
+                    # keep the daemon drawing for hours: only the newest runs get pictures.
+                    skipped = self._ledger.skip_old_pictures(_PICTURE_BACKLOG)
+                    log.info("pictures_skipped", runs=skipped, kept=_PICTURE_BACKLOG)
+                    pending = pending[:_PICTURE_BACKLOG]
                 if not pending:
                     self._pictures_pending = False
                 else:

@@ -232,3 +232,43 @@ def test_file_rewritten_with_another_files_content_has_a_current_verdict(
     feed(intake, inbox, "tuesday.csv", PASSING)  # Monday's export saved over Tuesday's
     document = json.loads((inbox.out_dir / "tuesday.verdict.json").read_text(encoding="utf-8"))
     assert document["source"]["sha256"] == sha256(PASSING)
+
+
+def test_only_the_newest_runs_keep_pending_pictures(tmp_path: Path) -> None:
+    """After a backlog, all but the newest N judged runs are marked as not to be drawn."""
+    from daemon.ledger import NewEvaluation
+
+    ledger = Ledger(tmp_path / LEDGER_NAME)
+    try:
+        for number in range(8):
+            ledger.record_evaluation(
+                NewEvaluation(
+                    inbox="inbox",
+                    path=f"run-{number}.csv",
+                    sha256=f"{number:064x}",
+                    size=1,
+                    mtime_ns=number,
+                    outcome="pass",
+                    version=1,
+                    output_stem=f"run-{number}",
+                    run=None,
+                    instrument=None,
+                    failures=0,
+                    warnings=0,
+                    message=None,
+                    criteria_sha256=None,
+                    config_sha256=None,
+                    calwarden_version="test",
+                    evaluated_at="2026-12-01T00:00:00+00:00",
+                    document=b"{}",
+                    flagged=None,
+                )
+            )
+        assert ledger.skip_old_pictures(3) == 5
+        assert [stem for _, _, stem in ledger.pictures_pending(limit=10)] == [
+            "run-7",
+            "run-6",
+            "run-5",
+        ]
+    finally:
+        ledger.close()
