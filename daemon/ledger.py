@@ -645,6 +645,20 @@ class Ledger:
         )
         return 0 if row is None else int(row[0])  # type: ignore[call-overload]
 
+    def control_summary(self) -> tuple[int, int, int]:
+        """How many series, current points, and series with active limits the log holds."""
+        row = self._one(
+            "SELECT (SELECT COUNT(*) FROM (SELECT DISTINCT instrument, analyte, kind, level "
+            "FROM control_points WHERE superseded = 0)), "
+            "(SELECT COUNT(*) FROM control_points WHERE superseded = 0), "
+            "(SELECT COUNT(*) FROM control_limits WHERE active = 1)",
+            (),
+        )
+        if row is None:
+            return (0, 0, 0)
+        series, points, limited = row
+        return (int(series), int(points), int(limited))  # type: ignore[call-overload]
+
     def next_point_id(self) -> int:
         """The id the next logged point will get (points are ordered by it)."""
         row = self._one("SELECT COALESCE(MAX(id), 0) + 1 FROM control_points", ())

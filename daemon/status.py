@@ -39,6 +39,7 @@ def status_report(state_dir: Path) -> tuple[str, bool]:
             last = ledger.latest(limit=1)
             last_failure = ledger.latest(outcome="fail", limit=1)
             last_error = ledger.latest(outcome="error", limit=1)
+            series, points, limited = ledger.control_summary()
         finally:
             ledger.close()
     except LedgerError as error:
@@ -48,6 +49,10 @@ def status_report(state_dir: Path) -> tuple[str, bool]:
     lines.append(
         f"files judged: {judged} (pass {counts['pass']}, fail {counts['fail']}, "
         f"error {counts['error']}); duplicates not judged again: {counts['duplicate']}"
+    )
+    lines.append(
+        f"control log:  {points} point(s) in {series} series, {limited} with limits "
+        f"(`calwarden chart export` lists them)"
     )
     if last:
         lines.append(f"last file:    {_line(last[0])}")
