@@ -15,7 +15,6 @@ import hashlib
 import io
 import json
 import sqlite3
-import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
@@ -23,6 +22,7 @@ from typing import Any
 import numpy as np
 import pytest
 from structlog.testing import capture_logs
+from waiting import wait_for
 
 from daemon.cli import main
 from daemon.config import AppConfig, build_config, plan_watch
@@ -51,15 +51,6 @@ Scale = dict[tuple[str, str], float]  # (sample_id, analyte) -> factor on its re
 
 
 # --------------------------------------------------------------------------- helpers
-
-
-def wait_for(predicate: Callable[[], object], timeout: float = DEADLINE, what: str = "") -> None:
-    """Poll ``predicate`` every 20 ms until it is true; fail the test after ``timeout``."""
-    deadline = time.monotonic() + timeout
-    while not predicate():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"not within {timeout:g} s: {what or predicate}")
-        time.sleep(0.02)
 
 
 def metals_run(name: str, scale: Scale | None = None) -> bytes:

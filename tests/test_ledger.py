@@ -8,13 +8,13 @@ from __future__ import annotations
 
 import hashlib
 import json
-import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
 import pytest
 from structlog.testing import capture_logs
+from waiting import wait_for
 
 from daemon.config import AppConfig, Inbox, WatchPlan, plan_watch
 from daemon.intake import Intake, Outcome
@@ -28,15 +28,6 @@ FAILING = (FIXTURES / "bwl-metals-fail.csv").read_bytes()
 BROKEN = (FIXTURES / "bwl-bad-missing-nominal.csv").read_bytes()
 SETTLE = 0.1
 DEADLINE = 15.0
-
-
-def wait_for(predicate: Callable[[], object], timeout: float = DEADLINE, what: str = "") -> None:
-    """Poll ``predicate`` every 20 ms until it is true; fail the test after ``timeout``."""
-    deadline = time.monotonic() + timeout
-    while not predicate():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"not within {timeout:g} s: {what or predicate}")
-        time.sleep(0.02)
 
 
 def sha256(data: bytes) -> str:

@@ -17,6 +17,7 @@ from typing import Any
 
 import pytest
 from structlog.testing import capture_logs
+from waiting import wait_for
 from watchdog.observers.polling import PollingObserver
 
 from daemon.config import WatchPlan, build_config, plan_watch
@@ -31,15 +32,6 @@ SMALL = (FIXTURES / "bwl-addition-short.csv").read_text(encoding="utf-8")  # 5 r
 SMALL_RUN = "BWL-ICPMS-2-20261126-SB"  # its run column
 SETTLE = 0.1
 DEADLINE = 15.0  # generous: the machine is a shared 2-core one
-
-
-def wait_for(predicate: Callable[[], object], timeout: float = DEADLINE, what: str = "") -> None:
-    """Poll ``predicate`` every 20 ms until it is true; fail the test after ``timeout``."""
-    deadline = time.monotonic() + timeout
-    while not predicate():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"not within {timeout:g} s: {what or predicate}")
-        time.sleep(0.02)
 
 
 def small_run(number: int) -> bytes:
