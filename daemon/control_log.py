@@ -47,7 +47,7 @@ from rules.verdict import Severity
 
 SeriesKind = Literal["ICV", "CCV", "LCS", "ISTD", "slope"]
 _HISTORY = 40  # points of history a rule can need: 10-x across two levels needs at most 20
-_BASELINE_SEARCH = 5000  # points looked through for a baseline's runs
+_BASELINE_SEARCH = 2000  # points looked through for a baseline spanning enough runs
 
 
 class _Section(BaseModel):
@@ -243,11 +243,13 @@ def assess(
         fixed = next((f for f in settings.fixed if f.matches(key)), None)
         stored = ledger.active_limits(key) if fixed is None else None
         limits: ControlLimits | None = None
+        size, in_control = ledger.series_size(key, excluding=replacing)
+        fresh_in_control = sum(1 for _, point in fresh if point.accepted)
         if fixed is not None:
             limits = ControlLimits.fixed(fixed.centre, fixed.sd)
         elif stored is not None:
             limits = _limits(stored)
-        else:
+        elif in_control + fresh_in_control >= settings.baseline_points:
             earlier = ledger.series_points(
                 key, first=_BASELINE_SEARCH, excluding=replacing, accepted_only=True
             )
@@ -267,7 +269,7 @@ def assess(
                     established.n,
                     LimitSource.BASELINE,
                 )
-        size = ledger.series_size(key, excluding=replacing) + len(fresh)
+        size += len(fresh)
         summaries.append(
             {
                 "instrument": key.instrument,

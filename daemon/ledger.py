@@ -636,14 +636,20 @@ class Ledger:
             for row in rows
         ]
 
-    def series_size(self, key: SeriesKey, *, excluding: tuple[str, str] = ("", "")) -> int:
+    def series_size(
+        self, key: SeriesKey, *, excluding: tuple[str, str] = ("", "")
+    ) -> tuple[int, int]:
+        """How many current points the series has, and how many of them are in control."""
         row = self._one(
-            "SELECT COUNT(*) FROM control_points p JOIN evaluations e ON e.id = p.evaluation_id "
+            "SELECT COUNT(*), COALESCE(SUM(p.accepted), 0) FROM control_points p "
+            "JOIN evaluations e ON e.id = p.evaluation_id "
             "WHERE p.instrument = ? AND p.analyte = ? AND p.kind = ? AND p.level = ? "
             "AND p.superseded = 0 AND NOT (e.inbox = ? AND e.path = ?)",
             (*_key_values(key), *excluding),
         )
-        return 0 if row is None else int(row[0])  # type: ignore[call-overload]
+        if row is None:
+            return (0, 0)
+        return (int(row[0]), int(row[1]))  # type: ignore[call-overload]
 
     def control_summary(self) -> tuple[int, int, int]:
         """How many series, current points, and series with active limits the log holds."""
