@@ -98,6 +98,17 @@ CREATE UNIQUE INDEX IF NOT EXISTS one_current_point
     ON control_points (sha256, instrument, analyte, kind, level, seq) WHERE superseded = 0;
 CREATE INDEX IF NOT EXISTS control_by_series
     ON control_points (instrument, analyte, kind, level, superseded, id);
+CREATE INDEX IF NOT EXISTS control_by_evaluation ON control_points (evaluation_id);
+-- Each series' size, kept with every change so that no run has to count the log.
+CREATE TABLE IF NOT EXISTS control_series (
+    instrument TEXT NOT NULL,
+    analyte TEXT NOT NULL,
+    kind TEXT NOT NULL,
+    level TEXT NOT NULL,
+    points INTEGER NOT NULL,
+    in_control INTEGER NOT NULL,
+    PRIMARY KEY (instrument, analyte, kind, level)
+);
 -- Each set of limits a series has had, with when it was set, one active per series.
 CREATE TABLE IF NOT EXISTS control_limits (
     id INTEGER PRIMARY KEY,
@@ -500,16 +511,13 @@ class Ledger:
             evaluation_id = int(cursor.lastrowid or 0)
             self._upsert_seen(new.inbox, new.path, Seen(new.size, new.mtime_ns, new.sha256))
             if new.version > 1:
-                self._db.execute(
-                    "UPDATE control_points SET superseded = 1 WHERE evaluation_id IN "
-                    "(SELECT id FROM evaluations WHERE inbox = ? AND path = ? AND id != ?)",
-                    (new.inbox, new.path, evaluation_id),
-                )
-            self._db.executemany(
-                "INSERT OR IGNORE INTO control_points (evaluation_id, instrument, analyte, kind, "
-                "level, run, seq, sample_id, acquired, value, unit, sha256, accepted) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                [
+                self._supersede(new.inbox, new.path, evaluation_id)
+            added: dict[SeriesKey, list[int]] = {}
+            for point in new.control_points:
+                inserted = self._db.execute(
+                    "INSERT OR IGNORE INTO control_points (evaluation_id, instrument, analyte, "
+                    "kind, level, run, seq, sample_id, acquired, value, unit, sha256, accepted) "
+                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                     (
                         evaluation_id,
                         *_key_values(point.key),
@@ -521,10 +529,14 @@ class Ledger:
                         point.unit,
                         new.sha256,
                         int(point.accepted),
-                    )
-                    for point in new.control_points
-                ],
-            )
+                    ),
+                ).rowcount
+                if inserted:
+                    tally = added.setdefault(point.key, [0, 0])
+                    tally[0] += 1
+                    tally[1] += int(point.accepted)
+            for key, (points, in_control) in added.items():
+                self._count(key, points, in_control)
             for limits in new.control_limits:
                 self._store_limits(limits)
         return evaluation_id
@@ -557,6 +569,36 @@ class Ledger:
             )
 
     # ------------------------------------------------------------------ the control log
+
+    def _count(self, key: SeriesKey, points: int, in_control: int) -> None:
+        self._db.execute(
+            "INSERT INTO control_series (instrument, analyte, kind, level, points, in_control) "
+            "VALUES (?, ?, ?, ?, ?, ?) ON CONFLICT (instrument, analyte, kind, level) DO UPDATE "
+            "SET points = points + excluded.points, in_control = in_control + excluded.in_control",
+            (*_key_values(key), points, in_control),
+        )
+
+    def _earlier_versions_points(
+        self, inbox: str, path: str, keep: int | None = None
+    ) -> list[tuple[SeriesKey, int, int]]:
+        """Current points of a file's judgements other than ``keep``, counted per series."""
+        rows = self._db.execute(
+            "SELECT instrument, analyte, kind, level, COUNT(*), SUM(accepted) "
+            "FROM control_points WHERE superseded = 0 AND evaluation_id IN "
+            "(SELECT id FROM evaluations WHERE inbox = ? AND path = ? AND id != ?) "
+            "GROUP BY instrument, analyte, kind, level",
+            (inbox, path, -1 if keep is None else keep),
+        ).fetchall()
+        return [(SeriesKey(*row[:4]), int(row[4]), int(row[5])) for row in rows]
+
+    def _supersede(self, inbox: str, path: str, evaluation_id: int) -> None:
+        for key, points, in_control in self._earlier_versions_points(inbox, path, evaluation_id):
+            self._count(key, -points, -in_control)
+        self._db.execute(
+            "UPDATE control_points SET superseded = 1 WHERE superseded = 0 AND evaluation_id IN "
+            "(SELECT id FROM evaluations WHERE inbox = ? AND path = ? AND id != ?)",
+            (inbox, path, evaluation_id),
+        )
 
     def _store_limits(self, limits: NewLimits) -> None:
         self._db.execute(
@@ -639,24 +681,31 @@ class Ledger:
     def series_size(
         self, key: SeriesKey, *, excluding: tuple[str, str] = ("", "")
     ) -> tuple[int, int]:
-        """How many current points the series has, and how many of them are in control."""
+        """How many current points the series has, and how many of them are in control.
+
+        Read from the kept counts, less the points of ``excluding``'s earlier versions.
+        """
         row = self._one(
-            "SELECT COUNT(*), COALESCE(SUM(p.accepted), 0) FROM control_points p "
-            "JOIN evaluations e ON e.id = p.evaluation_id "
-            "WHERE p.instrument = ? AND p.analyte = ? AND p.kind = ? AND p.level = ? "
-            "AND p.superseded = 0 AND NOT (e.inbox = ? AND e.path = ?)",
-            (*_key_values(key), *excluding),
+            "SELECT points, in_control FROM control_series WHERE instrument = ? AND analyte = ? "
+            "AND kind = ? AND level = ?",
+            _key_values(key),
         )
-        if row is None:
-            return (0, 0)
-        return (int(row[0]), int(row[1]))  # type: ignore[call-overload]
+        points, in_control = (0, 0) if row is None else (int(row[0]), int(row[1]))  # type: ignore[call-overload]
+        if excluding != ("", ""):
+            try:
+                earlier = self._earlier_versions_points(*excluding)
+            except sqlite3.Error as error:
+                raise LedgerError(f"{self.path}: cannot read the ledger: {error}") from None
+            for other, count, accepted in earlier:
+                if other == key:
+                    points, in_control = points - count, in_control - accepted
+        return points, in_control
 
     def control_summary(self) -> tuple[int, int, int]:
         """How many series, current points, and series with active limits the log holds."""
         row = self._one(
-            "SELECT (SELECT COUNT(*) FROM (SELECT DISTINCT instrument, analyte, kind, level "
-            "FROM control_points WHERE superseded = 0)), "
-            "(SELECT COUNT(*) FROM control_points WHERE superseded = 0), "
+            "SELECT (SELECT COUNT(*) FROM control_series WHERE points > 0), "
+            "(SELECT COALESCE(SUM(points), 0) FROM control_series), "
             "(SELECT COUNT(*) FROM control_limits WHERE active = 1)",
             (),
         )

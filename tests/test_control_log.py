@@ -718,3 +718,17 @@ def test_ewma_reports_a_slow_drift_when_switched_on(lab: Callable[..., Lab]) -> 
 def test_ewma_is_off_by_default(lab: Callable[..., Lab]) -> None:
     """Without control.ewma the same drift raises nothing under 1-3s alone."""
     assert not [f for o in _drifting_lab(lab, False) for f in control_findings(verdict(o))]
+
+
+def test_kept_series_counts_equal_the_points(lab: Callable[..., Lab]) -> None:
+    """The counts kept per series match its points after new versions, reverts and duplicates."""
+    one = lab()
+    first, second = metals_run("RUN-A"), metals_run("RUN-B", zn_ccv(1.0, 0.8))
+    one.judge("a.csv", first)
+    one.judge("a.csv", second)  # a new version
+    one.judge("a.csv", first)  # back to the first content
+    one.judge("b.csv", second)  # a duplicate of a.csv's second version
+    one.judge("c.csv", first)  # a duplicate of a.csv
+    for key in one.ledger.series_keys():
+        points = one.ledger.series_points(key)
+        assert one.ledger.series_size(key) == (len(points), sum(p.accepted for p in points))
