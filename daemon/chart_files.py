@@ -160,13 +160,13 @@ def draw_charts(
     return draw_series(ledger, settings, charts_dir, keys)
 
 
-def draw_calibrations(document: Mapping[str, Any], out_folder: Path, stem: str) -> list[Path]:
-    """One picture per calibration of a verdict: the curve over its standards, the residuals."""
+def draw_calibration(
+    document: Mapping[str, Any], out_folder: Path, stem: str, analyte: str
+) -> Path:
+    """The picture of one calibration of a verdict: the curve over its standards, residuals."""
     from daemon.charts import calibration_png
 
-    written = []
-    for analyte, calibration in (document.get("calibrations") or {}).items():
-        path = out_folder / calibration_picture_name(stem, analyte)
-        atomic_write(path, calibration_png(analyte, calibration))
-        written.append(path)
-    return written
+    path = out_folder / calibration_picture_name(stem, analyte)
+    out_folder.mkdir(parents=True, exist_ok=True)
+    atomic_write(path, calibration_png(analyte, document["calibrations"][analyte]))
+    return path

@@ -356,6 +356,11 @@ class Ledger:
         seen = self.seen(inbox, path)
         return seen is not None and (seen.size, seen.mtime_ns) == (size, mtime_ns)
 
+    def seen_in(self, inbox: str) -> dict[str, tuple[int, int]]:
+        """Size and mtime of every file recorded in an inbox (one query for a whole rescan)."""
+        rows = self._rows("SELECT path, size, mtime_ns FROM seen WHERE inbox = ?", (inbox,))
+        return {str(path): (int(size), int(mtime)) for path, size, mtime in rows}  # type: ignore[call-overload]
+
     def seen(self, inbox: str, path: str) -> Seen | None:
         """The last recorded size, mtime and hash of a file, or None if never judged."""
         row = self._one(

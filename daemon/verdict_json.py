@@ -7,6 +7,7 @@ Stable keys (see README, "The verdict JSON"): ``status``, ``run``, ``source``,
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 from importlib.metadata import PackageNotFoundError, version
@@ -34,6 +35,7 @@ def dump_verdict(document: dict[str, Any]) -> str:
     return json.dumps(document, ensure_ascii=False, separators=(",", ":"))
 
 
+@functools.cache  # package metadata is read from disk: once per process is enough
 def calwarden_version() -> str:
     try:
         return version("calwarden")

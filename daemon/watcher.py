@@ -37,6 +37,7 @@ import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
+from typing import Any
 
 import structlog
 from watchdog.events import FileSystemEvent, FileSystemEventHandler
@@ -44,7 +45,7 @@ from watchdog.observers import Observer
 from watchdog.observers.api import BaseObserver
 from watchdog.observers.polling import PollingObserver
 
-from daemon.chart_files import CHARTS_FOLDER, draw_calibrations, draw_series
+from daemon.chart_files import CHARTS_FOLDER, draw_calibration, draw_series
 from daemon.config import Inbox, WatchPlan
 from daemon.intake import Intake, Outcome, OutputError
 from daemon.ledger import LEDGER_NAME, Ledger, LedgerError, SeriesKey
@@ -60,7 +61,7 @@ _MAX_WAIT = 1.0  # seconds the worker sleeps at most, so that a stop is seen pro
 _LOCKED_BACKOFF_CAP = 30.0
 _UNREADABLE_ATTEMPTS = 5
 _PICTURE_BACKLOG = 50  # runs whose calibration pictures are drawn after a backlog
-_DRAW_SLICE = 0.5  # seconds a picture may take; none is started closer to a file's turn
+_DRAW_SLICE = 0.4  # seconds one picture may take; none is started closer to a file's turn
 
 
 class StartError(Exception):
@@ -74,6 +75,7 @@ class _Candidate:
     size: int
     mtime_ns: int
     attempts: int = 0
+    due: float = 0.0  # when it is next checked; earlier entries for it in the heap are stale
 
 
 @dataclass(order=True, slots=True)
@@ -81,6 +83,17 @@ class _Due:
     when: float
     order: int
     path: Path = field(compare=False)
+
+
+@dataclass(slots=True)
+class _RunPictures:
+    """The calibration pictures of one judged run still to draw."""
+
+    evaluation_id: int
+    document: dict[str, Any]
+    folder: Path
+    stem: str
+    analytes: list[str]
 
 
 class _Hints(FileSystemEventHandler):
@@ -136,6 +149,7 @@ class Watcher:
         self._observer_failing = False
         self._stale_charts: dict[SeriesKey, None] = {}  # ordered: drawn oldest first
         self._pictures_pending = True  # checked in the ledger at start
+        self._drawing: _RunPictures | None = None
 
     # ------------------------------------------------------------------ life cycle
 
@@ -275,13 +289,23 @@ class Watcher:
         return not any(part.startswith(".") for part in relative.parts[:-1])
 
     def _note(self, inbox: Inbox, path: Path) -> None:
-        """A hint about a path: start watching it settle, unless already doing so."""
-        if path in self._candidates:
-            return
+        """A hint about a path: start watching it settle, or restart its settle time."""
         try:
             info = path.stat()
         except OSError:
             return  # gone again (a temporary file renamed away): nothing to judge
+        waiting = self._candidates.get(path)
+        if waiting is not None:
+            if (info.st_size, info.st_mtime_ns) != (waiting.size, waiting.mtime_ns):
+                # Still being written: settled one settle time after this write, not after
+                # the next check finds it changed (which would make it wait twice).
+                waiting.size, waiting.mtime_ns, waiting.attempts = (
+                    info.st_size,
+                    info.st_mtime_ns,
+                    0,
+                )
+                self._schedule(path, self.settings.settle_seconds)
+            return
         if stat.S_ISDIR(info.st_mode):
             if inbox.recursive:
                 self._scan(inbox, path)  # a folder moved in brings files no event announces
@@ -296,13 +320,17 @@ class Watcher:
         self._schedule(path, self.settings.settle_seconds)
 
     def _schedule(self, path: Path, delay: float) -> None:
-        heapq.heappush(self._due, _Due(time.monotonic() + delay, next(self._order), path))
+        when = time.monotonic() + delay
+        candidate = self._candidates.get(path)
+        if candidate is not None:
+            candidate.due = when
+        heapq.heappush(self._due, _Due(when, next(self._order), path))
 
     def _settle_due(self) -> None:
         while self._due and self._due[0].when <= time.monotonic() and not self._stop.is_set():
-            path = heapq.heappop(self._due).path
-            candidate = self._candidates.get(path)
-            if candidate is not None:
+            entry = heapq.heappop(self._due)
+            candidate = self._candidates.get(entry.path)
+            if candidate is not None and candidate.due == entry.when:
                 self._check_candidate(candidate)
 
     def _check_candidate(self, candidate: _Candidate) -> None:
@@ -377,7 +405,8 @@ class Watcher:
 
     def _pictures_to_draw(self) -> bool:
         charts_on = self.plan.inboxes[0].config.control.charts
-        return charts_on and (self._pictures_pending or bool(self._stale_charts))
+        busy = self._pictures_pending or self._drawing is not None or bool(self._stale_charts)
+        return charts_on and busy
 
     def _quiet(self) -> bool:
         """Nothing to judge soon: time for pictures, which never delay a verdict."""
@@ -386,30 +415,23 @@ class Watcher:
         return not self._due or self._due[0].when > time.monotonic() + _DRAW_SLICE
 
     def _draw_one(self) -> None:
-        """Draw one picture's worth: a run's calibrations, or one stale control chart.
+        """Draw one picture: one calibration of a judged run, or one stale control chart.
 
-        Pictures are derived from the ledger, so a failure to draw is logged and the
-        daemon goes on; a run's calibration pictures are marked drawn only once written,
-        so a restart draws what a stop left undrawn.
+        One at a time (about 0.2 s each), so that a file arriving meanwhile waits for one
+        picture at most. Pictures are derived from the ledger: a failure to draw is
+        logged and the daemon goes on. A run is marked drawn once its last picture is
+        done (or failed), so a restart draws what a stop left undrawn.
         """
         control = self.plan.inboxes[0].config.control
         if not control.charts:
             return
         assert self._ledger is not None
         try:
-            if self._pictures_pending:
-                pending = self._ledger.pictures_pending(limit=_PICTURE_BACKLOG + 1)
-                if len(pending) > _PICTURE_BACKLOG:
-                    # A backlog of old files (a first start on a full export folder) would
-                    # keep the daemon drawing for hours: only the newest runs get pictures.
-                    skipped = self._ledger.skip_old_pictures(_PICTURE_BACKLOG)
-                    log.info("pictures_skipped", runs=skipped, kept=_PICTURE_BACKLOG)
-                    pending = pending[:_PICTURE_BACKLOG]
-                if not pending:
-                    self._pictures_pending = False
-                else:
-                    self._draw_calibrations(*pending[0])
-                    return
+            if self._drawing is None and self._pictures_pending:
+                self._next_run_to_draw()
+            if self._drawing is not None:
+                self._draw_next_calibration()
+                return
             if self._stale_charts:
                 key = next(iter(self._stale_charts))
                 try:
@@ -421,17 +443,38 @@ class Watcher:
         except Exception as error:  # a picture is never worth stopping the daemon for
             log.error("picture_failed", error=repr(error))
 
-    def _draw_calibrations(self, evaluation_id: int, inbox_name: str, stem: str) -> None:
+    def _next_run_to_draw(self) -> None:
         assert self._ledger is not None
+        pending = self._ledger.pictures_pending(limit=_PICTURE_BACKLOG + 1)
+        if len(pending) > _PICTURE_BACKLOG:
+            # A backlog of old files (a first start on a full export folder) would keep
+            # the daemon drawing for hours: only the newest runs get pictures.
+            skipped = self._ledger.skip_old_pictures(_PICTURE_BACKLOG)
+            log.info("pictures_skipped", runs=skipped, kept=_PICTURE_BACKLOG)
+            pending = pending[:_PICTURE_BACKLOG]
+        if not pending:
+            self._pictures_pending = False
+            return
+        evaluation_id, inbox_name, stem = pending[0]
         inbox = next((i for i in self.plan.inboxes if i.name == inbox_name), None)
+        document = json.loads(self._ledger.outputs_of(evaluation_id)[0])
+        analytes = list(document.get("calibrations") or {}) if inbox is not None else []
+        pure = PurePosixPath(stem)
+        folder = (inbox.out_dir if inbox is not None else self.plan.out) / pure.parent
+        self._drawing = _RunPictures(evaluation_id, document, folder, pure.name, analytes)
+
+    def _draw_next_calibration(self) -> None:
+        assert self._ledger is not None and self._drawing is not None
+        drawing = self._drawing
         try:
-            if inbox is not None:
-                document = json.loads(self._ledger.outputs_of(evaluation_id)[0])
-                pure = PurePosixPath(stem)
-                draw_calibrations(document, inbox.out_dir / pure.parent, pure.name)
+            if drawing.analytes:
+                analyte = drawing.analytes.pop(0)
+                draw_calibration(drawing.document, drawing.folder, drawing.stem, analyte)
         finally:
-            # Marked even when drawing failed (and said so): never retried in a loop.
-            self._ledger.mark_pictures_drawn(evaluation_id)
+            if not drawing.analytes:
+                # Marked even when drawing failed (and said so): never retried in a loop.
+                self._drawing = None
+                self._ledger.mark_pictures_drawn(drawing.evaluation_id)
 
     # ------------------------------------------------------------------ scans
 
@@ -465,6 +508,7 @@ class Watcher:
         if inbox.name in self._unreachable and folder == inbox.path:
             log.info("inbox_reachable", inbox=inbox.name, path=str(folder))
             self._unreachable.discard(inbox.name)
+        known = self._ledger.seen_in(inbox.name)
         new: list[tuple[int, Path, int]] = []
         for entry in entries:
             path = Path(entry.path)
@@ -475,7 +519,7 @@ class Watcher:
             except OSError:
                 continue
             relative = path.relative_to(inbox.path).as_posix()
-            if self._ledger.unchanged(inbox.name, relative, info.st_size, info.st_mtime_ns):
+            if known.get(relative) == (info.st_size, info.st_mtime_ns):
                 continue
             new.append((info.st_mtime_ns, path, info.st_size))
         # Oldest first: a backlog is judged in the order the instrument wrote it, which
