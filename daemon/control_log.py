@@ -210,12 +210,18 @@ def assess(
     now: str,
     *,
     replacing: tuple[str, str] = ("", ""),
+    failed_baselines: dict[SeriesKey, int] | None = None,
 ) -> Assessment:
     """Log-to-be points of one run, and the Westgard findings they complete.
 
     ``replacing`` (inbox, path): the file whose earlier versions this run replaces;
-    their points are not history for it.
+    their points are not history for it. ``failed_baselines`` remembers, across
+    calls, how many in-control points a series had when a baseline could not be
+    set from them (all values equal, say), so that it is tried again only once
+    the series has doubled, not on every run.
     """
+    if failed_baselines is None:
+        failed_baselines = {}
     points = tuple(
         NewPoint(
             SeriesKey(instrument, o.analyte, o.kind, o.level),
@@ -249,7 +255,9 @@ def assess(
             limits = ControlLimits.fixed(fixed.centre, fixed.sd)
         elif stored is not None:
             limits = _limits(stored)
-        elif in_control + fresh_in_control >= settings.baseline_points:
+        elif in_control + fresh_in_control >= max(
+            settings.baseline_points, 2 * failed_baselines.get(key, 0)
+        ):
             earlier = ledger.series_points(
                 key, first=_BASELINE_SEARCH, excluding=replacing, accepted_only=True
             )
@@ -262,6 +270,7 @@ def assess(
                 key, candidates, settings.baseline_points, settings.baseline_runs, now
             )
             if established is not None:
+                failed_baselines.pop(key, None)
                 new_limits.append(established)
                 limits = ControlLimits(
                     established.centre,
@@ -269,6 +278,10 @@ def assess(
                     established.n,
                     LimitSource.BASELINE,
                 )
+            elif len({p.run for p in candidates}) >= settings.baseline_runs:
+                # Enough points and runs, yet no limits (every value equal): not worth
+                # looking again on every run. (Too few runs: the next run may do.)
+                failed_baselines[key] = in_control + fresh_in_control
         size += len(fresh)
         summaries.append(
             {

@@ -107,6 +107,7 @@ class Intake:
     def __init__(self, ledger: Ledger, inboxes: tuple[Inbox, ...]) -> None:
         self.ledger = ledger
         self._digests = {inbox.name: config_digest(inbox.config) for inbox in inboxes}
+        self._failed_baselines: dict[SeriesKey, int] = {}
 
     def process(
         self,
@@ -277,6 +278,7 @@ class Intake:
             control_observations(judgement.run, judgement.verdict),
             _now(),
             replacing=(inbox.name, relative),
+            failed_baselines=self._failed_baselines,
         )
 
     def _judgement(self, inbox: Inbox, path: Path, data: bytes | None) -> Judgement:
