@@ -163,7 +163,13 @@ def _charts(document: dict[str, Any]) -> list[str]:
     lines: list[str] = []
     series = document.get("control_charts") or []
     if series:
-        lines += ["", "Control charts (this run's points joined these series)"]
+        title = "Control charts"
+        lines += [
+            "",
+            title,
+            "-" * len(title),
+            "This run's points joined these series (charts in the output folder's charts/):",
+        ]
         rows = [("series", "points", "centre", "SD", "limits")]
         for entry in series:
             name = " ".join(
@@ -182,7 +188,13 @@ def _charts(document: dict[str, Any]) -> list[str]:
         lines += ["  " + line for line in _table(rows)]
     pictures = document.get("pictures") or []
     if pictures:
-        lines += ["", "Pictures (calibration curve and residuals, per analyte; beside this report)"]
+        title = "Pictures"
+        lines += [
+            "",
+            title,
+            "-" * len(title),
+            "Each calibration's curve and residuals, beside this report:",
+        ]
         lines += [f"  {name}" for name in pictures]
     return lines
 
