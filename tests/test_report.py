@@ -44,3 +44,26 @@ def test_summary_leaves_out_the_tables() -> None:
 def test_failed_ccv_is_reported_with_value_and_limit() -> None:
     """The failing CCV is reported in plain words with its recovery and its limit."""
     assert "CCV-2 Zn recovered 82.6 %, limit 90–110 %" in _report("bwl-metals-fail.csv")
+
+
+def test_daemon_report_lists_control_series_and_pictures() -> None:
+    """A verdict the daemon amended names the series the run joined and its pictures."""
+    document = {
+        **judge_file(FIXTURES / "bwl-metals-pass.csv", load_config(None)).document,
+        "control_charts": [
+            {
+                "instrument": "BWL-ICPMS-2",
+                "analyte": "Zn",
+                "kind": "CCV",
+                "level": "25 µg/L",
+                "points": 24,
+                "centre": 99.8,
+                "sd": 1.6,
+                "limits": "baseline",
+            }
+        ],
+        "pictures": ["bwl-metals-pass.calibration-Zn.png"],
+    }
+    report = render(document)
+    assert "BWL-ICPMS-2 CCV Zn 25 µg/L  24      99.8    1.6  baseline" in report
+    assert "  bwl-metals-pass.calibration-Zn.png" in report
