@@ -409,7 +409,7 @@ class Watcher:
         return charts_on and busy
 
     def _quiet(self) -> bool:
-        """Nothing to judge soon: time for pictures, which never delay a verdict."""
+        """Nothing to judge soon: time for a picture (a file arriving waits for one at most)."""
         if not self._hints.empty():
             return False
         return not self._due or self._due[0].when > time.monotonic() + _DRAW_SLICE
