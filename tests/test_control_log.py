@@ -732,3 +732,18 @@ def test_kept_series_counts_equal_the_points(lab: Callable[..., Lab]) -> None:
     for key in one.ledger.series_keys():
         points = one.ledger.series_points(key)
         assert one.ledger.series_size(key) == (len(points), sum(p.accepted for p in points))
+
+
+def test_chart_draws_the_chosen_series_as_png(
+    lab: Callable[..., Lab], capsys: pytest.CaptureFixture[str]
+) -> None:
+    """``calwarden chart --analyte Zn --kind CCV`` writes that series' PNG under charts/."""
+    one = lab()
+    one.judge_runs(varied_runs(2, seed=11))
+    capsys.readouterr()
+    argv = ["chart", "--out", str(one.plan.out), "--analyte", "Zn", "--kind", "CCV"]
+    assert main(argv) == 0
+    (drawn,) = (one.plan.out / "charts").rglob("*.png")
+    assert drawn.name == "Zn--CCV--25_ug_L.png"
+    assert drawn.read_bytes().startswith(b"\x89PNG")
+    assert str(drawn) in capsys.readouterr().out
