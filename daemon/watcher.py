@@ -232,8 +232,14 @@ class Watcher:
             while not self._stop.is_set():
                 now = time.monotonic()
                 wake = min(next_rescan, next_check, self._due[0].when if self._due else now + 60)
-                self._idle.set() if not self._due and self._hints.empty() else self._idle.clear()
-                wait = 0.0 if self._pictures_to_draw() else min(wake - now, _MAX_WAIT)
+                if not self._due and self._hints.empty():
+                    self._idle.set()
+                else:
+                    self._idle.clear()
+                # With a picture to draw and no file due soon, only look for hints; a file
+                # due soon is waited for as usual (no spinning until its turn).
+                drawing_next = self._pictures_to_draw() and self._quiet()
+                wait = 0.0 if drawing_next else min(wake - now, _MAX_WAIT)
                 self._take_hints(max(0.0, wait))
                 now = time.monotonic()
                 if now >= next_check:
