@@ -14,10 +14,10 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from daemon.control_log import ControlSettings, SeriesFilter, series_name
+from daemon.control_log import ControlSettings, SeriesFilter, series_limits, series_name
 from daemon.ledger import Ledger, SeriesKey, StoredLimits
 from daemon.outputs import atomic_write
-from rules.control import ControlLimits, ControlPoint, ControlSeries, LimitSource, evaluate_group
+from rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
 from rules.verdict import Severity
 
 CHARTS_FOLDER = "charts"
@@ -66,13 +66,7 @@ def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> An
     from daemon.charts import BASELINE, IN_CONTROL, REJECTION, WARNING, ChartPoint, ControlChart
 
     points = ledger.series_points(key, last=_HISTORY)
-    fixed = next((f for f in settings.fixed if f.matches(key)), None)
-    stored = None if fixed else ledger.active_limits(key)
-    limits: ControlLimits | None = None
-    if fixed is not None:
-        limits = ControlLimits.fixed(fixed.centre, fixed.sd)
-    elif stored is not None:
-        limits = ControlLimits(stored.centre, stored.sd, stored.n, LimitSource(stored.source))
+    limits, stored = series_limits(ledger, settings, key)
 
     status = [IN_CONTROL] * len(points)
     rules: list[list[str]] = [[] for _ in points]
@@ -127,7 +121,7 @@ def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> An
         ),
         centre=None if limits is None else limits.centre,
         sd=None if limits is None else limits.sd,
-        limits_note=_limits_note(stored, fixed is not None)
+        limits_note=_limits_note(stored, limits is not None and limits.source is LimitSource.FIXED)
         or (
             f"a baseline needs {settings.baseline_points} in-control points from "
             f"{settings.baseline_runs} runs"

@@ -160,10 +160,24 @@ def series_name(key: SeriesKey) -> str:
     return f"{key.kind} {key.analyte} {key.level}".strip()
 
 
-def _limits(stored: StoredLimits) -> ControlLimits:
-    return ControlLimits(
+def series_limits(
+    ledger: Ledger, settings: ControlSettings, key: SeriesKey
+) -> tuple[ControlLimits | None, StoredLimits | None]:
+    """The limits a series is judged by now, and the stored set they come from.
+
+    Fixed limits from the configuration win over stored ones (and have no stored
+    set); a series with neither has no limits yet.
+    """
+    fixed = next((f for f in settings.fixed if f.matches(key)), None)
+    if fixed is not None:
+        return ControlLimits.fixed(fixed.centre, fixed.sd), None
+    stored = ledger.active_limits(key)
+    if stored is None:
+        return None, None
+    limits = ControlLimits(
         centre=stored.centre, sd=stored.sd, n=stored.n, source=LimitSource(stored.source)
     )
+    return limits, stored
 
 
 def baseline_for(
@@ -241,21 +255,16 @@ def assess(
     new_by_key: dict[SeriesKey, list[tuple[int, NewPoint]]] = {}
     for offset, point in enumerate(points):
         new_by_key.setdefault(point.key, []).append((first_new + offset, point))
+    seq_of = {first_new + offset: point.seq for offset, point in enumerate(points)}
 
     new_limits: list[NewLimits] = []
     groups: dict[tuple[str, str, str], list[ControlSeries]] = {}
     summaries: list[dict[str, Any]] = []
     for key, fresh in new_by_key.items():
-        fixed = next((f for f in settings.fixed if f.matches(key)), None)
-        stored = ledger.active_limits(key) if fixed is None else None
-        limits: ControlLimits | None = None
+        limits, _ = series_limits(ledger, settings, key)
         size, in_control = ledger.series_size(key, excluding=replacing)
         fresh_in_control = sum(1 for _, point in fresh if point.accepted)
-        if fixed is not None:
-            limits = ControlLimits.fixed(fixed.centre, fixed.sd)
-        elif stored is not None:
-            limits = _limits(stored)
-        elif in_control + fresh_in_control >= max(
+        if limits is None and in_control + fresh_in_control >= max(
             settings.baseline_points, 2 * failed_baselines.get(key, 0)
         ):
             earlier = ledger.series_points(
@@ -336,9 +345,7 @@ def assess(
                     "severity": severity,
                     "analyte": analyte,
                     "sample_id": completing.label,
-                    "seq": next(
-                        (p.seq for pid, p in _all(new_by_key) if pid == completing.order), None
-                    ),
+                    "seq": seq_of.get(completing.order),
                     "value": round(completing.z, 4),
                     "limit": None,
                     "message": f"control chart {violation.rule}: {violation.message}",
@@ -346,10 +353,6 @@ def assess(
                 }
             )
     return Assessment(points, tuple(new_limits), tuple(findings), tuple(summaries))
-
-
-def _all(new_by_key: dict[SeriesKey, list[tuple[int, NewPoint]]]) -> list[tuple[int, NewPoint]]:
-    return [item for items in new_by_key.values() for item in items]
 
 
 def amend(document: dict[str, Any], assessment: Assessment) -> dict[str, Any]:

@@ -203,6 +203,7 @@ class Intake:
             raise OutputError(f"cannot write the outputs in {out_folder}: {error}") from error
         status = str(document["status"])
         message = _first_failure(document)
+        failures, warnings = _count(document, "fail"), _count(document, "warn")
         self.ledger.record_evaluation(
             NewEvaluation(
                 inbox=inbox.name,
@@ -215,8 +216,8 @@ class Intake:
                 output_stem=stem,
                 run=document.get("run"),
                 instrument=document.get("instrument"),
-                failures=_count(document, "fail"),
-                warnings=_count(document, "warn"),
+                failures=failures,
+                warnings=warnings,
                 message=message,
                 criteria_sha256=document.get("criteria_sha256"),
                 config_sha256=self._digests.get(inbox.name),
@@ -238,8 +239,8 @@ class Intake:
             run=document.get("run"),
             instrument=document.get("instrument"),
             version=version,
-            failures=_count(document, "fail"),
-            warnings=_count(document, "warn"),
+            failures=failures,
+            warnings=warnings,
             reason=message,
             criteria_sha256=document.get("criteria_sha256"),
             config_sha256=self._digests.get(inbox.name),
@@ -254,8 +255,8 @@ class Intake:
             seen.sha256,
             run=document.get("run"),
             instrument=document.get("instrument"),
-            failures=_count(document, "fail"),
-            warnings=_count(document, "warn"),
+            failures=failures,
+            warnings=warnings,
             message=message,
             verdict_path=verdict_path,
             version=version,

@@ -412,27 +412,19 @@ class Ledger:
 
     def counts(self) -> dict[str, int]:
         """How many judgements of each outcome, and how many duplicates."""
-        try:
-            rows = self._db.execute(
-                "SELECT outcome, COUNT(*) FROM evaluations GROUP BY outcome"
-            ).fetchall()
-        except sqlite3.Error as error:
-            raise LedgerError(f"{self.path}: cannot read the ledger: {error}") from None
+        rows = self._rows("SELECT outcome, COUNT(*) FROM evaluations GROUP BY outcome", ())
         counts = {"pass": 0, "fail": 0, "error": 0, "duplicate": 0}
-        counts.update({str(outcome): int(number) for outcome, number in rows})
+        counts.update({str(outcome): int(number) for outcome, number in rows})  # type: ignore[call-overload]
         return counts
 
     def latest(self, *, outcome: str | None = None, limit: int = 1) -> list[Evaluation]:
         """The most recent evaluations, newest first; ``outcome`` filters them."""
         where, parameters = ("WHERE outcome = ?", (outcome,)) if outcome else ("", ())
-        try:
-            rows = self._db.execute(
-                f"SELECT {_COLUMNS} FROM evaluations {where} ORDER BY id DESC LIMIT ?",
-                (*parameters, limit),
-            ).fetchall()
-        except sqlite3.Error as error:
-            raise LedgerError(f"{self.path}: cannot read the ledger: {error}") from None
-        return [Evaluation(*row) for row in rows]
+        rows = self._rows(
+            f"SELECT {_COLUMNS} FROM evaluations {where} ORDER BY id DESC LIMIT ?",
+            (*parameters, limit),
+        )
+        return [Evaluation(*row) for row in rows]  # type: ignore[arg-type]
 
     def integrity(self) -> str:
         row = self._one("PRAGMA integrity_check", ())
