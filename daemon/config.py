@@ -8,13 +8,14 @@ whose message names the key (``criteria.defaults.min_r_sqared: unknown key
 from __future__ import annotations
 
 import difflib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
+from daemon.alert_settings import AlertSettings
 from daemon.control_log import ControlSettings, FixedLimits
 from daemon.formats import (
     ColumnByPattern,
@@ -47,6 +48,11 @@ class AppConfig(BaseModel):
         description="the control-chart log across runs: limits, Westgard rules, charts",
     )
     watch: WatchSettings = Field(default_factory=WatchSettings)
+    alerts: AlertSettings = Field(
+        default_factory=AlertSettings,
+        description="who hears about failed runs, unjudged files, control-chart rules and "
+        "daemon trouble, and how (e-mail, .eml files, a webhook)",
+    )
     inboxes: tuple[InboxSettings, ...] = Field(
         default=(),
         description="folders to watch, each with its own instrument, patterns, layout and "
@@ -220,6 +226,21 @@ class WatchPlan:
     state_dir: Path
     settings: WatchSettings
     inboxes: tuple[Inbox, ...]
+    alerts: AlertSettings = field(default_factory=AlertSettings)
+    control: ControlSettings = field(default_factory=ControlSettings)  # for charts in alerts
+
+
+def resolve_alert_paths(alerts: AlertSettings, base: Path) -> AlertSettings:
+    """The alert settings with their file paths made relative to the configuration's folder."""
+    email = alerts.email
+    updates = {
+        field: base / value
+        for field in ("ca_file", "password_file")
+        if (value := getattr(email, field)) is not None
+    }
+    if not updates:
+        return alerts
+    return alerts.model_copy(update={"email": email.model_copy(update=updates)})
 
 
 def _inside(inner: Path, outer: Path) -> bool:
@@ -308,4 +329,11 @@ def plan_watch(
         for other in paths[index + 1 :]:
             if _inside(path, other) or _inside(other, path):
                 raise ConfigError(f"the inboxes {path} and {other} overlap")
-    return WatchPlan(out_dir, state_dir, settings, tuple(resolved))
+    return WatchPlan(
+        out_dir,
+        state_dir,
+        settings,
+        tuple(resolved),
+        alerts=resolve_alert_paths(config.alerts, base),
+        control=config.control,
+    )

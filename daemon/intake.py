@@ -9,8 +9,10 @@ The order of the steps is what makes a crash at any instant harmless:
 3. when it is a new version of a known file, the earlier version's outputs are
    written under a suffixed name from the ledger's copy of them;
 4. its outputs are written, each atomically, the verdict JSON last;
-5. the evaluation, its control points and any limits they set are recorded in
-   the ledger in one durable transaction.
+5. the evaluation, its control points, any limits they set and its alert (a
+   failed run, a file that could not be judged, a control rule that fired) are
+   recorded in the ledger in one durable transaction; the alert sender takes
+   the alert from there.
 
 A crash before step 5 leaves the file unrecorded, so the next start judges
 it again (against the same history) and writes the same outputs over the old
@@ -31,10 +33,12 @@ from typing import Any
 
 import structlog
 
+from daemon.alert_content import file_alert, payload_bytes
+from daemon.alert_settings import AlertSettings
 from daemon.chart_files import calibration_picture_name
 from daemon.config import AppConfig, Inbox
 from daemon.control_log import Assessment, amend, assess
-from daemon.ledger import Evaluation, Ledger, NewEvaluation, Seen, SeriesKey
+from daemon.ledger import Evaluation, Ledger, NewAlert, NewEvaluation, Seen, SeriesKey
 from daemon.outputs import output_files, write_files
 from daemon.pipeline import Judgement, error_document, judge_file
 from daemon.report import render
@@ -104,8 +108,11 @@ def _now() -> str:
 class Intake:
     """Judges settled files of the watched inboxes; owns the ledger's writing connection."""
 
-    def __init__(self, ledger: Ledger, inboxes: tuple[Inbox, ...]) -> None:
+    def __init__(
+        self, ledger: Ledger, inboxes: tuple[Inbox, ...], alerts: AlertSettings | None = None
+    ) -> None:
         self.ledger = ledger
+        self.alerts = alerts if alerts is not None else AlertSettings()
         self._digests = {inbox.name: config_digest(inbox.config) for inbox in inboxes}
         self._failed_baselines: dict[SeriesKey, int] = {}
 
@@ -204,6 +211,19 @@ class Intake:
         status = str(document["status"])
         message = _first_failure(document)
         failures, warnings = _count(document, "fail"), _count(document, "warn")
+        verdict_path = out_folder / f"{name}.verdict.json"
+        evaluated_at = _now()
+        alert = self._alert(
+            inbox,
+            relative,
+            document,
+            version=version,
+            sha256=seen.sha256,
+            evaluated_at=evaluated_at,
+            out_folder=out_folder,
+            name=name,
+            flagged=".flagged.csv" in files,
+        )
         self.ledger.record_evaluation(
             NewEvaluation(
                 inbox=inbox.name,
@@ -222,14 +242,14 @@ class Intake:
                 criteria_sha256=document.get("criteria_sha256"),
                 config_sha256=self._digests.get(inbox.name),
                 calwarden_version=str(document["calwarden_version"]),
-                evaluated_at=_now(),
+                evaluated_at=evaluated_at,
                 document=files[".verdict.json"],
                 flagged=files.get(".flagged.csv"),
                 control_points=assessment.points,
                 control_limits=assessment.limits,
+                alert=alert,
             )
         )
-        verdict_path = out_folder / f"{name}.verdict.json"
         log.info(
             "file_evaluated",
             inbox=inbox.name,
@@ -246,6 +266,7 @@ class Intake:
             config_sha256=self._digests.get(inbox.name),
             calwarden_version=document["calwarden_version"],
             verdict=str(verdict_path),
+            alert=None if alert is None else alert.kind,
             seconds=round(time.perf_counter() - started, 4),  # settled file to recorded verdict
         )
         return Outcome(
@@ -262,6 +283,56 @@ class Intake:
             version=version,
             reruns=len(document.get("reruns", [])),
             series=tuple(dict.fromkeys(point.key for point in assessment.points)),
+        )
+
+    def _alert_kind(self, document: dict[str, Any]) -> str | None:
+        status = document.get("status")
+        if status in ("fail", "error"):
+            return str(status)
+        fired = {
+            str(f.get("rule", "")).removeprefix("control.")
+            for f in document.get("findings", [])
+            if str(f.get("rule", "")).startswith("control.") and f.get("severity") != "info"
+        }
+        return "control" if fired & set(self.alerts.control_rules) else None
+
+    def _alert(
+        self,
+        inbox: Inbox,
+        relative: str,
+        document: dict[str, Any],
+        *,
+        version: int,
+        sha256: str,
+        evaluated_at: str,
+        out_folder: Path,
+        name: str,
+        flagged: bool,
+    ) -> NewAlert | None:
+        """The alert this verdict raises, if any, for the outbox."""
+        kind = self._alert_kind(document)
+        if not self.alerts.enabled or kind is None or kind not in self.alerts.kinds:
+            return None
+        instrument = document.get("instrument") or inbox.instrument
+        summary = file_alert(
+            kind,
+            {**document, "instrument": instrument},
+            inbox=inbox.name,
+            path=relative,
+            version=version,
+            evaluated_at=evaluated_at,
+            verdict_path=str(out_folder / f"{name}.verdict.json"),
+            report_path=str(out_folder / f"{name}.report.txt"),
+            flagged_path=str(out_folder / f"{name}.flagged.csv") if flagged else None,
+        )
+        return NewAlert(
+            # Judged again after a crash, the same version raises the same key: no second alert.
+            dedupe_key=f"{kind}:{inbox.name}:{relative}:v{version}:{sha256}",
+            kind=kind,
+            inbox=inbox.name,
+            instrument=None if instrument is None else str(instrument),
+            created_at=evaluated_at,
+            summary=payload_bytes(summary),
         )
 
     def _assess(self, inbox: Inbox, relative: str, judgement: Judgement) -> Assessment:

@@ -29,7 +29,7 @@ from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # 2: the alert outbox (a version-1 ledger is upgraded in place)
 LEDGER_NAME = "ledger.sqlite3"
 
 _SCHEMA = """
@@ -127,6 +127,37 @@ CREATE TABLE IF NOT EXISTS control_limits (
 );
 CREATE INDEX IF NOT EXISTS limits_by_series
     ON control_limits (instrument, analyte, kind, level, active);
+-- The alert outbox: every alert, recorded with what raised it (in the evaluation's own
+-- transaction), then released (or gathered into a digest by the throttle) and delivered.
+-- The dedupe key makes a file judged again after a crash raise no second alert.
+CREATE TABLE IF NOT EXISTS alerts (
+    id INTEGER PRIMARY KEY,
+    dedupe_key TEXT NOT NULL UNIQUE,
+    kind TEXT NOT NULL,
+    evaluation_id INTEGER REFERENCES evaluations (id),
+    inbox TEXT,
+    instrument TEXT,
+    created_at TEXT NOT NULL,
+    summary TEXT NOT NULL,
+    state TEXT NOT NULL DEFAULT 'new' CHECK (state IN ('new', 'gathered', 'released')),
+    released_at REAL,
+    digest_id INTEGER REFERENCES alerts (id),
+    message_file TEXT
+);
+CREATE INDEX IF NOT EXISTS alerts_by_state ON alerts (state, id);
+-- One row per alert and way of delivering it (e-mail, webhook), with its retries.
+CREATE TABLE IF NOT EXISTS deliveries (
+    alert_id INTEGER NOT NULL REFERENCES alerts (id),
+    channel TEXT NOT NULL CHECK (channel IN ('email', 'webhook')),
+    state TEXT NOT NULL DEFAULT 'waiting' CHECK (state IN ('waiting', 'sent', 'dead')),
+    attempts INTEGER NOT NULL DEFAULT 0,
+    next_attempt REAL NOT NULL DEFAULT 0,
+    first_attempt REAL,
+    last_error TEXT,
+    finished_at TEXT,
+    PRIMARY KEY (alert_id, channel)
+);
+CREATE INDEX IF NOT EXISTS deliveries_due ON deliveries (state, next_attempt);
 CREATE INDEX IF NOT EXISTS evaluations_by_path ON evaluations (inbox, path, version);
 CREATE INDEX IF NOT EXISTS evaluations_by_stem ON evaluations (inbox, output_stem);
 """
@@ -188,6 +219,19 @@ class NewEvaluation:
     flagged: bytes | None
     control_points: tuple[NewPoint, ...] = ()
     control_limits: tuple[NewLimits, ...] = ()
+    alert: NewAlert | None = None  # recorded in the same transaction as the evaluation
+
+
+@dataclass(frozen=True, slots=True)
+class NewAlert:
+    """An alert for the outbox: what it is about, and its stored summary (JSON)."""
+
+    dedupe_key: str
+    kind: str
+    inbox: str | None
+    instrument: str | None
+    created_at: str
+    summary: str
 
 
 @dataclass(frozen=True, slots=True)
@@ -306,6 +350,11 @@ class Ledger:
                             self._db.execute(statement)
                     self._db.execute(
                         "INSERT OR IGNORE INTO meta (key, value) VALUES ('schema_version', ?)",
+                        (str(SCHEMA_VERSION),),
+                    )
+                    # Version 1 lacked only the outbox tables, just created above.
+                    self._db.execute(
+                        "UPDATE meta SET value = ? WHERE key = 'schema_version' AND value = '1'",
                         (str(SCHEMA_VERSION),),
                     )
                 found = self.meta("schema_version")
@@ -537,7 +586,29 @@ class Ledger:
                 self._count(key, points, in_control)
             for limits in new.control_limits:
                 self._store_limits(limits)
+            if new.alert is not None:
+                self._insert_alert(new.alert, evaluation_id)
         return evaluation_id
+
+    def _insert_alert(self, alert: NewAlert, evaluation_id: int | None) -> None:
+        self._db.execute(
+            "INSERT OR IGNORE INTO alerts (dedupe_key, kind, evaluation_id, inbox, instrument, "
+            "created_at, summary) VALUES (?, ?, ?, ?, ?, ?, ?)",
+            (
+                alert.dedupe_key,
+                alert.kind,
+                evaluation_id,
+                alert.inbox,
+                alert.instrument,
+                alert.created_at,
+                alert.summary,
+            ),
+        )
+
+    def record_alert(self, alert: NewAlert) -> None:
+        """Put an alert that no evaluation raised (the daemon's own trouble) in the outbox."""
+        with self._write(durable=True):
+            self._insert_alert(alert, None)
 
     def pictures_pending(self, limit: int = 1) -> list[tuple[int, str, str]]:
         """Judged runs whose calibration pictures are not drawn yet, newest first."""

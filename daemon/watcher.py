@@ -45,6 +45,7 @@ from watchdog.observers import Observer
 from watchdog.observers.api import BaseObserver
 from watchdog.observers.polling import PollingObserver
 
+from daemon.alert_sender import AlertSender, daemon_trouble, emergency_alert
 from daemon.chart_files import CHARTS_FOLDER, draw_calibration, draw_series
 from daemon.config import Inbox, WatchPlan
 from daemon.intake import Intake, Outcome, OutputError
@@ -60,6 +61,7 @@ _HINT_EVENTS = frozenset({"created", "modified", "moved", "closed"})
 _MAX_WAIT = 1.0  # seconds the worker sleeps at most, so that a stop is seen promptly
 _LOCKED_BACKOFF_CAP = 30.0
 _UNREADABLE_ATTEMPTS = 5
+_FAULT_ALERT_SECONDS = 10.0  # how long a faulted daemon waits for its alert to go
 _PICTURE_BACKLOG = 50  # runs whose calibration pictures are drawn after a backlog
 _DRAW_SLICE = 0.4  # seconds one picture may take; none is started closer to a file's turn
 
@@ -150,6 +152,7 @@ class Watcher:
         self._stale_charts: dict[SeriesKey, None] = {}  # ordered: drawn oldest first
         self._pictures_pending = True  # checked in the ledger at start
         self._drawing: _RunPictures | None = None
+        self.sender: AlertSender | None = None
 
     # ------------------------------------------------------------------ life cycle
 
@@ -171,7 +174,10 @@ class Watcher:
             self._lock.release()
             raise StartError(str(error)) from None
         self._ledger = ledger
-        self._intake = Intake(ledger, self.plan.inboxes)
+        self._intake = Intake(ledger, self.plan.inboxes, self.plan.alerts)
+        if self.plan.alerts.enabled:
+            self.sender = AlertSender(self.plan.state_dir, self.plan.alerts, self.plan.control)
+            self.sender.start()
         log.info(
             "daemon_started",
             pid=os.getpid(),
@@ -258,6 +264,12 @@ class Watcher:
             log.exception("daemon_bug")
         finally:
             self._stop_observers()
+            if self.sender is not None:
+                if self.fault is not None:
+                    # The fault's own alert: give the sender a moment to hand it over.
+                    self.sender.wake()
+                    self.sender.wait_settled(_FAULT_ALERT_SECONDS)
+                self.sender.stop(self.plan.alerts.email.timeout_seconds + 5)
             if self._ledger is not None:
                 self._ledger.close()
             self._lock.release()
@@ -267,6 +279,27 @@ class Watcher:
     def _fail(self, message: str) -> None:
         self.fault = message
         log.critical("daemon_fault", reason=message)
+        self._daemon_alert(
+            "daemon_fault",
+            "calwarden stopped after a fault; files are not being judged until it runs again",
+            reason=message,
+        )
+
+    def _daemon_alert(self, event: str, message: str, **details: object) -> None:
+        """Put the daemon's own trouble in the outbox; if the ledger itself is the trouble,
+        write the message straight to the outbox folder."""
+        if not self.plan.alerts.enabled or "daemon" not in self.plan.alerts.kinds:
+            return
+        alert = daemon_trouble(event, message, **details)
+        try:
+            assert self._ledger is not None
+            self._ledger.record_alert(alert)
+        except (LedgerError, AssertionError) as error:
+            log.error("alert_not_recorded", event=event, error=str(error))
+            emergency_alert(self.plan.state_dir, self.plan.alerts, alert)
+            return
+        if self.sender is not None:
+            self.sender.wake()
 
     def _take_hints(self, timeout: float) -> None:
         try:
@@ -398,6 +431,8 @@ class Watcher:
             candidate.inbox, candidate.path, data, sha256, size, mtime_ns
         )
         self.outcomes += 1
+        if self.sender is not None and outcome.status in ("fail", "error", "pass"):
+            self.sender.wake()  # a control alert can come with a pass
         self._stale_charts.update(dict.fromkeys(outcome.series))
         if outcome.verdict_path is not None:
             self._pictures_pending = True
@@ -510,6 +545,13 @@ class Watcher:
                     "inbox_unreachable", inbox=inbox.name, path=str(folder), error=repr(error)
                 )
                 self._unreachable.add(inbox.name)
+                self._daemon_alert(
+                    "inbox_unreachable",
+                    f"the inbox {inbox.name} cannot be read; files written there are not "
+                    "being judged",
+                    path=str(folder),
+                    error=repr(error),
+                )
             return 0
         if inbox.name in self._unreachable and folder == inbox.path:
             log.info("inbox_reachable", inbox=inbox.name, path=str(folder))
@@ -596,6 +638,11 @@ class Watcher:
             return
         if not self._observer_failing:
             log.warning("observer_restarted", reason="the folder observer had stopped")
+            self._daemon_alert(
+                "observer_restarted",
+                "the folder observer had stopped and was restarted; a rescan follows, so no "
+                "file is missed",
+            )
         self._stop_observers()
         try:
             self._start_observers()

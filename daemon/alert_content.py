@@ -1,0 +1,403 @@
+"""What an alert says: its summary (stored in the outbox), its e-mail, its webhook JSON.
+
+An alert is stored as a small JSON *summary* made when the file is judged, in
+the same transaction as the evaluation. The e-mail is composed from it when it
+is sent, so that a message can always be composed again, identically, after a
+crash: the Message-ID and the Date come from the stored alert, not the clock.
+
+Everything here that came from a file (sample ids, run and instrument names,
+paths) is untrusted. It goes into a header only through :func:`header_text`,
+which drops control characters (CR and LF included) and caps the length, and
+into the HTML part only escaped.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import html
+import json
+import re
+import unicodedata
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from email.message import EmailMessage
+from email.policy import SMTP
+from email.utils import format_datetime
+from typing import Any
+
+from daemon.verdict_json import CAUTION
+
+#: How much of one piece of file text may go into a header.
+HEADER_PIECE_LIMIT = 80
+#: The whole subject's cap (RFC 5322 recommends lines under 78 characters; a subject
+#: is folded, but a very long one helps nobody).
+SUBJECT_LIMIT = 200
+#: Findings and re-runs listed in one message; the verdict attached has them all.
+LISTED_LIMIT = 40
+
+_WORDS = {
+    "fail": "FAIL",
+    "error": "ERROR",
+    "control": "CONTROL",
+    "daemon": "DAEMON",
+    "digest": "DIGEST",
+    "summary": "DAILY",
+    "test": "TEST",
+}
+
+
+def header_text(value: object, limit: int = HEADER_PIECE_LIMIT) -> str:
+    """File text made safe for a header: no control characters, one line, capped."""
+    text = "" if value is None else str(value)
+    # Cc covers CR, LF, TAB and NUL; Zl and Zp are the Unicode line and paragraph
+    # separators, which some mail readers also break lines at.
+    cleaned = "".join(
+        " " if unicodedata.category(c) in ("Cc", "Zl", "Zp") else c
+        for c in text
+        if unicodedata.category(c) != "Cf"
+    )
+    cleaned = re.sub(r"\s+", " ", cleaned).strip()
+    if len(cleaned) > limit:
+        cleaned = cleaned[: limit - 1].rstrip() + "…"
+    return cleaned
+
+
+def _plural(count: int, word: str) -> str:
+    return f"{count} {word}" if count == 1 else f"{count} {word}s"
+
+
+# --------------------------------------------------------------------------- summaries
+
+
+def _finding_summary(finding: Mapping[str, Any]) -> dict[str, Any]:
+    return {
+        key: finding.get(key)
+        for key in ("rule", "severity", "analyte", "sample_id", "seq", "value", "limit", "message")
+    }
+
+
+def file_alert(
+    kind: str,
+    document: Mapping[str, Any],
+    *,
+    inbox: str,
+    path: str,
+    version: int,
+    evaluated_at: str,
+    verdict_path: str,
+    report_path: str,
+    flagged_path: str | None,
+) -> dict[str, Any]:
+    """The stored summary of an alert about one judged file."""
+    findings = [f for f in document.get("findings", []) if f.get("severity") in ("fail", "warn")]
+    # Failures first, then the control-chart warnings that made this a control alert.
+    findings.sort(key=lambda f: 0 if f.get("severity") == "fail" else 1)
+    return {
+        "kind": kind,
+        "inbox": inbox,
+        "path": path,
+        "version": version,
+        "run": document.get("run"),
+        "instrument": document.get("instrument"),
+        "status": document.get("status"),
+        "error": document.get("error"),
+        "failures": sum(1 for f in findings if f.get("severity") == "fail"),
+        "warnings": sum(1 for f in findings if f.get("severity") == "warn"),
+        "findings": [_finding_summary(f) for f in findings[:LISTED_LIMIT]],
+        "more_findings": max(0, len(findings) - LISTED_LIMIT),
+        "reruns": list(document.get("reruns", []))[:LISTED_LIMIT],
+        "more_reruns": max(0, len(document.get("reruns", [])) - LISTED_LIMIT),
+        "control_series": [
+            {k: s.get(k) for k in ("instrument", "analyte", "kind", "level")}
+            for s in document.get("control_charts", [])
+            if s.get("analyte")
+            in {f.get("analyte") for f in findings if str(f.get("rule", "")).startswith("control.")}
+        ],
+        "evaluated_at": evaluated_at,
+        "verdict": verdict_path,
+        "report": report_path,
+        "flagged": flagged_path,
+    }
+
+
+def daemon_alert(event: str, message: str, when: str, **details: object) -> dict[str, Any]:
+    """The stored summary of an alert about the daemon itself."""
+    return {
+        "kind": "daemon",
+        "event": event,
+        "message": message,
+        "evaluated_at": when,
+        "details": {k: str(v) for k, v in details.items()},
+    }
+
+
+def digest_alert(gathered: Sequence[Mapping[str, Any]], when: str) -> dict[str, Any]:
+    """One message standing for alerts the throttle held back."""
+    return {
+        "kind": "digest",
+        "evaluated_at": when,
+        "alerts": [
+            {
+                k: alert.get(k)
+                for k in (
+                    "kind",
+                    "inbox",
+                    "path",
+                    "run",
+                    "instrument",
+                    "failures",
+                    "error",
+                    "message",
+                    "verdict",
+                    "evaluated_at",
+                )
+            }
+            | {"first": (alert.get("findings") or [{}])[0].get("message")}
+            for alert in gathered
+        ],
+    }
+
+
+# --------------------------------------------------------------------------- subject
+
+
+def subject(alert: Mapping[str, Any]) -> str:
+    """``[calwarden] FAIL ICP-2 run-1204: 3 findings``: one line, file text sanitised."""
+    kind = str(alert.get("kind"))
+    word = _WORDS.get(kind, kind.upper())
+    run = str(alert.get("run") or alert.get("path") or "")
+    instrument = str(alert.get("instrument") or "")
+    # A run named after its instrument (the usual case) is not worth the instrument twice.
+    pieces = (run,) if instrument and instrument in run else (instrument, run)
+    where = " ".join(header_text(piece) for piece in pieces if piece)
+    if kind == "fail":
+        what = f"{where}: {_plural(int(alert.get('failures') or 0), 'failure')}"
+    elif kind == "error":
+        what = f"{header_text(alert.get('inbox'))}/{header_text(alert.get('path'))}: not judged"
+    elif kind == "control":
+        rules = sorted(
+            {
+                str(f.get("rule", "")).removeprefix("control.")
+                for f in alert.get("findings", [])
+                if str(f.get("rule", "")).startswith("control.")
+            }
+        )
+        what = f"{where}: control chart {', '.join(rules)}"
+    elif kind == "daemon":
+        what = header_text(alert.get("message"))
+    elif kind == "digest":
+        alerts = alert.get("alerts", [])
+        counts: dict[str, int] = {}
+        for item in alerts:
+            counts[str(item.get("kind"))] = counts.get(str(item.get("kind")), 0) + 1
+        parts = ", ".join(f"{n} {_WORDS.get(k, k)}" for k, n in sorted(counts.items()))
+        what = f"{_plural(len(alerts), 'alert')} held back ({parts})"
+    elif kind == "summary":
+        what = f"{alert.get('day')}: {_plural(int(alert.get('judged') or 0), 'file')} judged"
+    else:
+        what = header_text(alert.get("message") or "calwarden test message")
+    return header_text(f"[calwarden] {word} {what}", SUBJECT_LIMIT)
+
+
+# --------------------------------------------------------------------------- bodies
+
+
+def _finding_line(finding: Mapping[str, Any]) -> str:
+    return f"[{finding.get('rule')}] {finding.get('message')}"
+
+
+def _rerun_line(rerun: Mapping[str, Any]) -> str:
+    seq = f" (seq {rerun['seq']})" if rerun.get("seq") is not None else ""
+    text = f"{rerun.get('sample_id')}{seq}: {', '.join(rerun.get('analytes', []))}"
+    if rerun.get("suggested_dilution"):
+        text += f"; dilute to {rerun['suggested_dilution']:g}× in total"
+    reasons = rerun.get("reasons") or rerun.get("flags") or []
+    if reasons:
+        text += f" ({'; '.join(str(r) for r in reasons[:2])})"
+    return text
+
+
+@dataclass(frozen=True, slots=True)
+class _Section:
+    title: str
+    lines: tuple[str, ...]
+
+
+def _sections(alert: Mapping[str, Any]) -> tuple[str, list[_Section]]:
+    """The message's opening sentence and its sections, as plain strings."""
+    kind = alert.get("kind")
+    where = f"{alert.get('inbox')}/{alert.get('path')}"
+    run = alert.get("run") or "(no run name)"
+    instrument = alert.get("instrument") or "(no instrument named)"
+    sections: list[_Section] = []
+    if kind in ("fail", "control"):
+        if kind == "fail":
+            opening = (
+                f"Run {run} on {instrument} FAILED its acceptance criteria: "
+                f"{_plural(int(alert.get('failures') or 0), 'failure')}, "
+                f"{_plural(int(alert.get('warnings') or 0), 'warning')}."
+            )
+        else:
+            opening = (
+                f"Run {run} on {instrument} passed its own criteria, but a control-chart "
+                "rule fired across runs: look at the trend before reporting."
+            )
+        findings = [_finding_line(f) for f in alert.get("findings", [])]
+        if alert.get("more_findings"):
+            findings.append(f"… and {alert['more_findings']} more (see the verdict)")
+        sections.append(
+            _Section("What failed" if kind == "fail" else "What fired", tuple(findings))
+        )
+        reruns = [_rerun_line(r) for r in alert.get("reruns", [])]
+        if alert.get("more_reruns"):
+            reruns.append(f"… and {alert['more_reruns']} more (see the report)")
+        if reruns:
+            sections.append(_Section(f"Samples to re-run ({len(reruns)})", tuple(reruns)))
+    elif kind == "error":
+        opening = (
+            f"The file {where} could not be judged, so none of its results has been "
+            "screened. Nothing in it may be reported until it is fixed and judged."
+        )
+        sections.append(_Section("Why", (str(alert.get("error") or "unknown"),)))
+    elif kind == "daemon":
+        opening = f"calwarden needs attention: {alert.get('message')}"
+        details = [f"{k}: {v}" for k, v in (alert.get("details") or {}).items()]
+        if details:
+            sections.append(_Section("Details", tuple(details)))
+    elif kind == "digest":
+        items = alert.get("alerts", [])
+        opening = (
+            f"{_plural(len(items), 'alert')} arrived faster than the throttle allows; "
+            "they are listed here instead of one message each."
+        )
+        lines = []
+        for item in items:
+            label = _WORDS.get(str(item.get("kind")), str(item.get("kind")))
+            name = item.get("run") or f"{item.get('inbox')}/{item.get('path')}"
+            reason = item.get("first") or item.get("error") or item.get("message") or ""
+            lines.append(f"{label} {name}: {reason}".strip())
+        sections.append(_Section("Alerts", tuple(lines)))
+    elif kind == "summary":
+        judged = _plural(int(alert.get("judged") or 0), "file")
+        opening = (
+            f"In the 24 hours to {alert.get('until')}: {judged} judged, "
+            f"{alert.get('pass', 0)} passed, {alert.get('fail', 0)} failed, "
+            f"{alert.get('error', 0)} could not be judged."
+        )
+        lines = [str(line) for line in alert.get("not_passed", [])]
+        if lines:
+            sections.append(_Section("Not passed", tuple(lines)))
+    else:
+        opening = str(alert.get("message") or "This is a test message from calwarden.")
+    if kind in ("fail", "control", "error"):
+        files = [f"file:    {where} (version {alert.get('version')})"]
+        files.append(f"verdict: {alert.get('verdict')}")
+        files.append(f"report:  {alert.get('report')}")
+        if alert.get("flagged"):
+            files.append(f"flagged: {alert.get('flagged')}")
+        files.append(f"judged:  {alert.get('evaluated_at')}")
+        sections.append(_Section("Where", tuple(files)))
+    return opening, sections
+
+
+def text_body(alert: Mapping[str, Any]) -> str:
+    opening, sections = _sections(alert)
+    parts = [opening, ""]
+    for section in sections:
+        parts.append(section.title)
+        parts.extend(f"  - {line}" for line in section.lines)
+        parts.append("")
+    parts.append(CAUTION)
+    return "\n".join(parts) + "\n"
+
+
+def html_body(alert: Mapping[str, Any], chart_ids: Sequence[tuple[str, str]] = ()) -> str:
+    """The HTML alternative; ``chart_ids`` are (content id, caption) of inline charts."""
+    opening, sections = _sections(alert)
+    escape = html.escape
+    parts = ["<html><body>", f"<p>{escape(opening)}</p>"]
+    for section in sections:
+        parts.append(f"<h3>{escape(section.title)}</h3><ul>")
+        parts.extend(f"<li>{escape(line)}</li>" for line in section.lines)
+        parts.append("</ul>")
+    for content_id, caption in chart_ids:
+        parts.append(
+            f'<p>{escape(caption)}<br><img src="cid:{escape(content_id.strip("<>"))}" '
+            f'alt="{escape(caption)}"></p>'
+        )
+    parts.append(f"<p><small>{escape(CAUTION)}</small></p></body></html>")
+    return "\n".join(parts) + "\n"
+
+
+# --------------------------------------------------------------------------- the message
+
+
+def message_id(dedupe_key: str, sender: str) -> str:
+    """The same alert always gets the same Message-ID, so a resend is recognisable."""
+    digest = hashlib.sha256(dedupe_key.encode("utf-8")).hexdigest()[:32]
+    domain = header_text(sender.rpartition("@")[2], 100) or "localhost"
+    domain = re.sub(r"[^A-Za-z0-9.-]", "", domain) or "localhost"
+    return f"<calwarden.{digest}@{domain}>"
+
+
+def email_message(
+    alert: Mapping[str, Any],
+    *,
+    dedupe_key: str,
+    created_at: str,
+    sender: str,
+    recipients: Iterable[str],
+    verdict: bytes | None = None,
+    charts: Sequence[tuple[str, bytes]] = (),
+) -> EmailMessage:
+    """The RFC 5322 message of an alert: plain text, an HTML alternative, the verdict."""
+    message = EmailMessage(policy=SMTP)
+    message["Subject"] = subject(alert)
+    message["From"] = sender
+    to = list(recipients)
+    if to:
+        message["To"] = ", ".join(to)
+    message["Date"] = format_datetime(datetime.fromisoformat(created_at))
+    message["Message-ID"] = message_id(dedupe_key, sender)
+    message["X-Calwarden-Alert"] = header_text(alert.get("kind"))
+    message["Auto-Submitted"] = "auto-generated"  # RFC 3834: no auto-replies to it
+    message.set_content(text_body(alert))
+    chart_ids = [
+        (message_id(f"{dedupe_key}/chart/{index}", sender), caption)
+        for index, (caption, _) in enumerate(charts)
+    ]
+    message.add_alternative(html_body(alert, chart_ids), subtype="html")
+    if charts:
+        html_part = message.get_payload()[1]  # type: ignore[index]
+        assert isinstance(html_part, EmailMessage)
+        for (content_id, caption), (_, png) in zip(chart_ids, charts, strict=True):
+            html_part.add_related(
+                png, maintype="image", subtype="png", cid=content_id, filename=f"{caption}.png"
+            )
+    if verdict is not None:
+        name = header_text(str(alert.get("path") or "verdict").rsplit("/", 1)[-1], 60)
+        message.add_attachment(
+            verdict,
+            maintype="application",
+            subtype="json",
+            filename=f"{re.sub(r'[^A-Za-z0-9._-]', '_', name)}.verdict.json",
+        )
+    return message
+
+
+def webhook_payload(
+    alert: Mapping[str, Any], *, dedupe_key: str, created_at: str
+) -> dict[str, Any]:
+    """The JSON posted to a webhook: a one-line text for chat tools, and the details."""
+    return {
+        "text": subject(alert),
+        "body": text_body(alert),
+        "alert": dict(alert),
+        "id": dedupe_key,
+        "created_at": created_at,
+    }
+
+
+def payload_bytes(summary: Mapping[str, Any]) -> str:
+    return json.dumps(summary, sort_keys=True, ensure_ascii=False)
