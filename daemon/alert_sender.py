@@ -38,6 +38,7 @@ from daemon.alert_content import (
     daemon_alert,
     digest_alert,
     email_message,
+    header_text,
     payload_bytes,
     webhook_payload,
 )
@@ -477,3 +478,58 @@ def emergency_alert(state_dir: Path, settings: AlertSettings, alert: NewAlert) -
             log.error("emergency_alert_not_sent", reason=str(error))
         else:
             log.info("emergency_alert_sent", kind=alert.kind)
+
+
+def send_test_message(settings: AlertSettings, state_dir: Path) -> list[str]:
+    """``calwarden alert test``: one message through every configured channel, now.
+
+    Returns what was done, one line each; raises DeliveryError on the first channel
+    that fails. With no channel configured, the message is written to the outbox folder.
+    """
+    import socket
+
+    when = now_iso()
+    host = header_text(socket.gethostname(), 60)
+    content = {
+        "kind": "test",
+        "message": f"test message from calwarden on {host}",
+        "evaluated_at": when,
+    }
+    stored = StoredAlert(0, f"test:{when}", "test", None, None, None, when, content)
+    recipients = settings.email.to or tuple(
+        dict.fromkeys(address for route in settings.routes for address in route.to)
+    )
+    message = email_message(
+        content,
+        dedupe_key=stored.dedupe_key,
+        created_at=when,
+        sender=settings.email.sender,
+        recipients=recipients,
+    )
+    done = []
+    if settings.email.host:
+        refused = send_email(settings.email, message, recipients)
+        done.append(
+            f"sent a test message to {', '.join(a for a in recipients if a not in refused)} "
+            f"via {settings.email.host}:{settings.email.effective_port} "
+            f"({settings.email.security})"
+        )
+        done.extend(f"refused for {address}: {why}" for address, why in refused.items())
+    if settings.webhook.url:
+        token = os.environ.get(settings.webhook.token_env) if settings.webhook.token_env else None
+        post_webhook(
+            settings.webhook,
+            webhook_payload(content, dedupe_key=stored.dedupe_key, created_at=when),
+            token,
+        )
+        done.append(f"posted a test alert to the webhook {settings.webhook.url}")
+    if not done:
+        folder = state_dir / OUTBOX_FOLDER
+        folder.mkdir(parents=True, exist_ok=True)
+        path = folder / message_file_name(stored).replace("-000000-", "-")
+        atomic_write(path, message.as_bytes(policy=SMTP))
+        done.append(
+            "no SMTP server is configured (alerts.email.host), so alerts are written as .eml "
+            f"files only; a test message was written to {path}"
+        )
+    return done

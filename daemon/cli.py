@@ -114,6 +114,17 @@ def _parser() -> argparse.ArgumentParser:
     status.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
     status.add_argument("--config", type=Path, help="or: the daemon's configuration")
 
+    alert = commands.add_parser("alert", help="check that alerts reach their recipients")
+    alert_commands = alert.add_subparsers(dest="alert_command", metavar="ACTION")
+    alert_test = alert_commands.add_parser(
+        "test",
+        help="send a test message through the configured SMTP server and webhook now",
+        description="Sends one test message through every configured channel and says "
+        "what happened; with no SMTP server configured, writes it to the outbox folder.",
+    )
+    alert_test.add_argument("--config", type=Path, help="the daemon's configuration")
+    alert_test.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
+
     chart_options = _chart_options(argparse.SUPPRESS)  # an action keeps what came before it
     chart = commands.add_parser(
         "chart",
@@ -437,6 +448,34 @@ def _chart(args: argparse.Namespace) -> int:
         return EXIT_ERROR
 
 
+def _alert(args: argparse.Namespace) -> int:
+    from daemon.alert_sender import send_test_message
+    from daemon.alert_transport import DeliveryError
+    from daemon.config import resolve_alert_paths
+
+    if args.alert_command != "test":
+        print("calwarden: say what to do: calwarden alert test [--config CFG]", file=sys.stderr)
+        return EXIT_ERROR
+    folders = _daemon_folders(args)
+    if folders is None:
+        return EXIT_ERROR
+    _, state_dir, config = folders
+    settings = config.alerts
+    if args.config is not None:
+        settings = resolve_alert_paths(settings, args.config.resolve().parent)
+    try:
+        done = send_test_message(settings, state_dir)
+    except DeliveryError as error:
+        print(f"calwarden: the test message was not delivered: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    except OSError as error:
+        print(f"calwarden: cannot write the test message: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    for line in done:
+        print(line)
+    return EXIT_PASS
+
+
 def _demo(args: argparse.Namespace) -> int:
     from daemon.demo import run_demo
 
@@ -466,6 +505,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _demo(args)
     if args.command == "chart":
         return _chart(args)
+    if args.command == "alert":
+        return _alert(args)
     _parser().print_help()
     return EXIT_ERROR
 

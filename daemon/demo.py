@@ -18,6 +18,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+from daemon.alert_sender import OUTBOX_FOLDER
 from daemon.config import load_config, plan_watch
 from daemon.intake import Outcome
 from daemon.logs import LOG_NAME, configure_logging
@@ -188,6 +189,8 @@ def run_demo(
                 say("   " + describe(outcome))
             say("\n(drawing the calibration pictures and control charts)")
             watcher.wait_pictures(_WAIT_SECONDS)
+            if watcher.sender is not None:
+                watcher.sender.wait_settled(_WAIT_SECONDS)
         finally:
             watcher.stop()
     finally:
@@ -201,6 +204,12 @@ def run_demo(
     say(f"  ledger and JSON log:               {plan.state_dir} ({LOG_NAME})")
     say(f"  the failing run's report:          {out / 'bwl-demo-1202-metals.report.txt'}")
     say(f"  control charts (PNG):              {out / 'charts'}")
+    outbox = plan.state_dir / OUTBOX_FOLDER
+    alerts = sorted(outbox.glob("*.eml")) if outbox.is_dir() else []
+    say(
+        f"  alerts (e-mails as .eml files):    {outbox} ({len(alerts)}; no mail server is "
+        "set up in the demo, see README 'Alerts')"
+    )
     say(f"  status any time:                   calwarden status --out {out}")
     say(f"  watch it yourself:                 calwarden watch --config {config_path}")
     say(

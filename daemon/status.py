@@ -4,8 +4,10 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from daemon.ledger import LEDGER_NAME, Evaluation, Ledger, LedgerError
+from daemon.alert_sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
+from daemon.ledger import LEDGER_NAME, Evaluation, LedgerError
 from daemon.lock import is_locked, lock_owner
+from daemon.outbox import Outbox
 
 
 def _line(evaluation: Evaluation) -> str:
@@ -33,13 +35,17 @@ def status_report(state_dir: Path) -> tuple[str, bool]:
         lines.append(f"no ledger at {ledger_path}: no daemon has watched into this folder yet")
         return "\n".join(lines) + "\n", False
     try:
-        ledger = Ledger(ledger_path, read_only=True)
+        ledger = Outbox(ledger_path, read_only=True)
         try:
             counts = ledger.counts()
             last = ledger.latest(limit=1)
             last_failure = ledger.latest(outcome="fail", limit=1)
             last_error = ledger.latest(outcome="error", limit=1)
             series, points, limited = ledger.control_summary()
+            try:
+                alert_lines = _alerts(ledger, state_dir)
+            except LedgerError:  # a ledger from before the outbox, not yet opened by a daemon
+                alert_lines = ["alerts:       none yet"]
         finally:
             ledger.close()
     except LedgerError as error:
@@ -61,4 +67,28 @@ def status_report(state_dir: Path) -> tuple[str, bool]:
             lines.append(f"{label + ':':<13} {_line(found[0])}")
             if found[0].message:
                 lines.append(f"{'':<14}{found[0].message}")
+    lines.extend(alert_lines)
     return "\n".join(lines) + "\n", True
+
+
+def _alerts(outbox: Outbox, state_dir: Path) -> list[str]:
+    """The outbox: what is written, sent, waiting or refused, and the newest messages."""
+    counts = outbox.outbox_counts()
+    held = counts.new + counts.gathered
+    lines = [
+        f"alerts:       {counts.files} written as .eml in {state_dir / OUTBOX_FOLDER}; "
+        f"sent {counts.sent}, waiting to send {counts.waiting}"
+        + (f", held for a digest {held}" if held else "")
+        + f", dead letters {counts.dead}"
+    ]
+    if counts.dead:
+        lines.append(
+            f"{'':<14}DEAD LETTERS: {counts.dead} alert(s) refused for good; copies and "
+            f"reasons in {state_dir / DEAD_LETTER_FOLDER}"
+        )
+    for state, name, channel, error, attempts in outbox.problems():
+        label = "refused" if state == "dead" else f"retrying ({attempts} attempt(s))"
+        lines.append(f"{'':<14}{label} by {channel}: {name}: {error}")
+    for created_at, kind, name in outbox.recent_files():
+        lines.append(f"{'':<14}{created_at}  {kind.upper():<8} {name}")
+    return lines
