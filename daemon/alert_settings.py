@@ -81,6 +81,16 @@ class EmailSettings(_Section):
 
     _check_to = field_validator("to")(_addresses)
 
+    @model_validator(mode="before")
+    @classmethod
+    def _no_password_here(cls, data: object) -> object:
+        if isinstance(data, dict) and "password" in data:
+            raise ValueError(
+                "the password never goes in the configuration: name an environment variable "
+                "(password_env) or a file readable only by the service (password_file)"
+            )
+        return data
+
     @field_validator("sender")
     @classmethod
     def _one_sender(cls, value: str) -> str:

@@ -15,7 +15,15 @@ from typing import Any
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-from daemon.alert_settings import AlertSettings
+from daemon.alert_settings import (
+    AlertSettings,
+    DailySummarySettings,
+    EmailSettings,
+    RetrySettings,
+    Route,
+    ThrottleSettings,
+    WebhookSettings,
+)
 from daemon.control_log import ControlSettings, FixedLimits
 from daemon.formats import (
     ColumnByPattern,
@@ -123,6 +131,13 @@ def _known_keys() -> list[str]:
         InboxSettings,
         ControlSettings,
         FixedLimits,
+        AlertSettings,
+        EmailSettings,
+        Route,
+        ThrottleSettings,
+        RetrySettings,
+        WebhookSettings,
+        DailySummarySettings,
     )
     return [name for model in models for name in model.model_fields]
 
@@ -145,7 +160,7 @@ def describe_validation_error(error: ValidationError) -> str:
         close = difflib.get_close_matches(key, _known_keys(), n=1)
         hint = f" (did you mean {close[0]}?)" if close else ""
         return f"{where}: unknown key{hint}"
-    message = str(problem["msg"])
+    message = str(problem["msg"]).removeprefix("Value error, ")
     if "analytes." in message:  # raised by Criteria's own validator: already located
         return f"{where}.{message}" if where else message
     return f"{where}: {message}" if where else message
