@@ -243,12 +243,19 @@ def _sections(alert: Mapping[str, Any]) -> tuple[str, list[_Section]]:
                 f"Run {run} on {instrument} passed its own criteria, but a control-chart "
                 "rule fired across runs: look at the trend before reporting."
             )
-        findings = [_finding_line(f) for f in alert.get("findings", [])]
+        listed = alert.get("findings", [])
+        if kind == "fail":
+            failed = [_finding_line(f) for f in listed if f.get("severity") == "fail"]
+            warned = [_finding_line(f) for f in listed if f.get("severity") != "fail"]
+        else:
+            failed, warned = [_finding_line(f) for f in listed], []
+        warnings = len(warned)
         if alert.get("more_findings"):
-            findings.append(f"… and {alert['more_findings']} more (see the verdict)")
-        sections.append(
-            _Section("What failed" if kind == "fail" else "What fired", tuple(findings))
-        )
+            (warned or failed).append(f"… and {alert['more_findings']} more (see the verdict)")
+        title = "What failed" if kind == "fail" else "What fired"
+        sections.append(_Section(title, tuple(failed)))
+        if warned:
+            sections.append(_Section(f"Warnings ({warnings})", tuple(warned)))
         reruns = [_rerun_line(r) for r in alert.get("reruns", [])]
         if alert.get("more_reruns"):
             reruns.append(f"… and {alert['more_reruns']} more (see the report)")

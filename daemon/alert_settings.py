@@ -9,6 +9,8 @@ read from an environment variable or a file when a message is sent.
 from __future__ import annotations
 
 import os
+import re
+import unicodedata
 from pathlib import Path
 from typing import Literal
 
@@ -28,8 +30,12 @@ class _Section(BaseModel):
 
 def _addresses(values: tuple[str, ...]) -> tuple[str, ...]:
     for value in values:
-        if "@" not in value or any(c in value for c in "\r\n,;<> "):
-            raise ValueError(f"'{value}' is not a plain e-mail address (name@domain)")
+        # Control, format and separator characters (CR, LF, TAB, NUL, U+2028, spaces)
+        # have no place in an address and would break or forge a header.
+        if "@" not in value or any(
+            c in ",;<>" or unicodedata.category(c)[0] in "CZ" for c in value
+        ):
+            raise ValueError(f"{value!r} is not a plain e-mail address (name@domain)")
     return values
 
 
@@ -203,9 +209,14 @@ class DailySummarySettings(_Section):
     """Once a day, one message counting every file judged in the last 24 hours."""
 
     enabled: bool = Field(default=False, description="send the daily summary (off by default)")
-    at: str = Field(
-        default="07:00", pattern=r"^([01]\d|2[0-3]):[0-5]\d$", description="local time, HH:MM"
-    )
+    at: str = Field(default="07:00", description="local time, HH:MM")
+
+    @field_validator("at")
+    @classmethod
+    def _time_of_day(cls, value: str) -> str:
+        if not re.fullmatch(r"([01]\d|2[0-3]):[0-5]\d", value):
+            raise ValueError("must be a time of day as HH:MM (00:00 to 23:59), e.g. 07:00")
+        return value
 
 
 class AlertSettings(_Section):

@@ -456,11 +456,6 @@ def test_text_body_counts_findings_left_out() -> None:
     assert "… and 7 more (see the verdict)" in text_body(_fail_alert(more_findings=7))
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug: file_alert keeps warnings with failures and _sections lists them all under "
-    "'What failed', so a FAIL alert calls warnings failures",
-)
 def test_what_failed_lists_only_failures(
     failing_alert: dict[str, Any], failing_document: dict[str, Any]
 ) -> None:
