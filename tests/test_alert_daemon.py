@@ -36,6 +36,7 @@ import yaml
 from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import SMTP as SMTPServer
 from aiosmtpd.smtp import Envelope, Session
+from mail_server import free_port
 from structlog.testing import capture_logs
 from waiting import wait_for
 
@@ -64,14 +65,6 @@ posix_only = pytest.mark.skipif(sys.platform == "win32", reason="POSIX signals")
 
 
 # --------------------------------------------------------------------------- helpers
-
-
-def free_port() -> int:
-    """A port nothing listens on right now (aiosmtpd cannot be given port 0)."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
-        probe.bind(("127.0.0.1", 0))
-        port: int = probe.getsockname()[1]
-    return port
 
 
 def failing_run(name: str) -> bytes:
