@@ -363,8 +363,9 @@ class AlertSender:
         given_up = self._clock() - first > self.settings.retry.give_up_hours * 3600
         if error.permanent or given_up:
             reason = str(error) if error.permanent else f"gave up retrying: {error}"
-            self._outbox.finish(delivery, "dead", now_iso(), reason)
+            # The copy first: once the ledger says dead, the copy is there to be found.
             self._dead_letter(alert, delivery.channel, reason)
+            self._outbox.finish(delivery, "dead", now_iso(), reason)
             log.error(
                 "alert_dead_letter",
                 alert=alert.id,
