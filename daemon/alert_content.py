@@ -26,6 +26,8 @@ from email.policy import SMTP
 from email.utils import format_datetime
 from typing import Any
 
+from daemon.control_log import series_name
+from daemon.ledger import SeriesKey
 from daemon.verdict_json import CAUTION
 
 #: How much of one piece of file text may go into a header.
@@ -77,6 +79,25 @@ def _finding_summary(finding: Mapping[str, Any]) -> dict[str, Any]:
     }
 
 
+def _fired_series(
+    document: Mapping[str, Any], findings: Sequence[Mapping[str, Any]]
+) -> list[dict[str, Any]]:
+    """The series a control rule fired on, in the order the findings name them."""
+    messages = [
+        str(f.get("message", "")) for f in findings if str(f.get("rule", "")).startswith("control.")
+    ]
+    named = []
+    for entry in document.get("control_charts", []):
+        key = {k: str(entry.get(k) or "") for k in ("instrument", "analyte", "kind", "level")}
+        name = series_name(SeriesKey(**key))
+        # A series' name is followed by a sample label in the rules' messages.
+        first = min((m.find(f"{name} ") for m in messages if f"{name} " in m), default=-1)
+        if first >= 0:
+            position = next(i for i, m in enumerate(messages) if f"{name} " in m)
+            named.append(((position, first), key))
+    return [key for _, key in sorted(named, key=lambda item: item[0])]
+
+
 def file_alert(
     kind: str,
     document: Mapping[str, Any],
@@ -108,12 +129,7 @@ def file_alert(
         "more_findings": max(0, len(findings) - LISTED_LIMIT),
         "reruns": list(document.get("reruns", []))[:LISTED_LIMIT],
         "more_reruns": max(0, len(document.get("reruns", [])) - LISTED_LIMIT),
-        "control_series": [
-            {k: s.get(k) for k in ("instrument", "analyte", "kind", "level")}
-            for s in document.get("control_charts", [])
-            if s.get("analyte")
-            in {f.get("analyte") for f in findings if str(f.get("rule", "")).startswith("control.")}
-        ],
+        "control_series": _fired_series(document, findings),
         "evaluated_at": evaluated_at,
         "verdict": verdict_path,
         "report": report_path,

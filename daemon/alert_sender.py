@@ -203,18 +203,25 @@ class AlertSender:
         assert self._outbox is not None
         window = self.settings.throttle.window_minutes * 60
         quota = self.settings.throttle.max_messages
+        held: list[StoredAlert] = []
+        backlog = bool(self._outbox.alerts_in("gathered", limit=1))
+        released = self._outbox.released_since(self._clock() - window)
         for alert in self._outbox.alerts_in("new"):
             if alert.kind in _UNTHROTTLED:
                 self._release(alert)
-                continue
-            backlog = bool(self._outbox.alerts_in("gathered", limit=1))
-            if not backlog and self._outbox.released_since(self._clock() - window) < quota:
+            elif not backlog and not held and released < quota:
                 self._release(alert)
+                released += 1
             else:
-                self._outbox.gather(alert.id)
+                held.append(alert)  # in order: once one waits, the later ones wait too
+        if held:
+            self._outbox.gather([alert.id for alert in held])
+            for alert in held:
                 log.info("alert_gathered", alert=alert.id, kind=alert.kind, inbox=alert.inbox)
+        if not (held or backlog) or self._outbox.released_since(self._clock() - window) >= quota:
+            return  # nothing waits, or the window is still full: the digest comes later
         gathered = self._outbox.alerts_in("gathered")
-        if gathered and self._outbox.released_since(self._clock() - window) < quota:
+        if gathered:
             when = now_iso()
             summary = digest_alert([a.summary for a in gathered], when)
             summary["recipients"] = list(

@@ -237,7 +237,11 @@ class AlertSettings(_Section):
     )
     attach_verdict: bool = Field(default=True, description="attach the verdict JSON")
     inline_charts: int = Field(
-        default=3, ge=0, le=20, description="control charts shown in a control alert"
+        default=1,
+        ge=0,
+        le=20,
+        description="control charts drawn into a message, of the series the rules fired on, "
+        "first named first (each takes about 0.3 s to draw; all are in <out>/charts/)",
     )
     email: EmailSettings = Field(default_factory=EmailSettings)
     routes: tuple[Route, ...] = Field(

@@ -10,8 +10,10 @@ the message is fine and will go once the setting is fixed, but logged loudly.
 
 from __future__ import annotations
 
+import functools
 import json
 import smtplib
+import socket
 import ssl
 import urllib.error
 import urllib.request
@@ -39,6 +41,13 @@ def _tls_context(verify: bool, ca_file: object = None) -> ssl.SSLContext:
     return context
 
 
+@functools.cache
+def _local_name() -> str:
+    """The name given in EHLO, looked up once: smtplib would ask DNS on every connection,
+    which can take seconds where the lab's resolver is slow."""
+    return socket.getfqdn()
+
+
 def _where(settings: EmailSettings) -> str:
     return f"{settings.host}:{settings.effective_port} ({settings.security})"
 
@@ -49,9 +58,15 @@ def _connect(settings: EmailSettings) -> smtplib.SMTP:
     context = _tls_context(settings.verify_certificate, settings.ca_file)
     if settings.security == "ssl":
         return smtplib.SMTP_SSL(
-            settings.host, settings.effective_port, timeout=timeout, context=context
+            settings.host,
+            settings.effective_port,
+            local_hostname=_local_name(),
+            timeout=timeout,
+            context=context,
         )
-    client = smtplib.SMTP(settings.host, settings.effective_port, timeout=timeout)
+    client = smtplib.SMTP(
+        settings.host, settings.effective_port, local_hostname=_local_name(), timeout=timeout
+    )
     try:
         if settings.security == "starttls":
             client.ehlo()

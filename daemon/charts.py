@@ -33,12 +33,18 @@ from __future__ import annotations
 import io
 import math
 import textwrap
+import threading
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from typing import TYPE_CHECKING, Any, TypeGuard
 
 from rules.control import BASELINE_SIZE
+
+#: The daemon draws in two threads (the worker's pictures, the alert sender's inline
+#: charts); matplotlib's caches (fonts, text layout) are not documented as thread-safe,
+#: so one picture is drawn at a time.
+DRAWING = threading.Lock()
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -239,7 +245,8 @@ def _edge_label(ax: Axes, y: float, text: str, colour: str) -> None:
 
 def control_chart_png(chart: ControlChart) -> bytes:
     """The control chart as a PNG of 1000 × 600 px."""
-    return _png(control_chart_figure(chart))
+    with DRAWING:
+        return _png(control_chart_figure(chart))
 
 
 def control_chart_figure(chart: ControlChart) -> Figure:
@@ -566,7 +573,8 @@ def calibration_png(analyte: str, calibration: Mapping[str, Any]) -> bytes:
     bottom: each standard's back-calculation error (%) with ±15 % guide lines.
     Without a fit (``problem`` set, or no coefficients): the points and the problem.
     """
-    return _png(calibration_figure(analyte, calibration))
+    with DRAWING:
+        return _png(calibration_figure(analyte, calibration))
 
 
 def calibration_figure(analyte: str, calibration: Mapping[str, Any]) -> Figure:
