@@ -1,0 +1,89 @@
+"""Alerts about the daemon's own faults, including when the ledger itself is the fault."""
+
+from __future__ import annotations
+
+import email
+import email.policy
+import shutil
+from collections.abc import Iterator
+from email.message import EmailMessage
+from pathlib import Path
+
+import pytest
+from aiosmtpd.controller import Controller
+from mail_server import Recorder, free_port
+from waiting import wait_for
+
+from daemon.alert_sender import OUTBOX_FOLDER, daemon_trouble, emergency_alert
+from daemon.alert_settings import AlertSettings
+from daemon.config import build_config, plan_watch
+from daemon.watcher import Watcher
+
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+ANALYST = "analyst@brindlewick.example"
+
+
+def _parse(path: Path) -> EmailMessage:
+    parsed = email.message_from_bytes(path.read_bytes(), policy=email.policy.default)
+    assert isinstance(parsed, EmailMessage)
+    return parsed
+
+
+@pytest.fixture
+def server() -> Iterator[tuple[Recorder, int]]:
+    """A real SMTP server on a free loopback port, stopped when the test ends."""
+    handler, port = Recorder(), free_port()
+    controller = Controller(handler, hostname="127.0.0.1", port=port)
+    controller.start()
+    try:
+        yield handler, port
+    finally:
+        controller.stop()
+
+
+def test_an_output_fault_sends_a_daemon_alert_before_the_daemon_stops(
+    tmp_path: Path, server: tuple[Recorder, int]
+) -> None:
+    """The output folder replaced by a file: the fault's alert reaches the server."""
+    handler, port = server
+    inbox, out, state = tmp_path / "inbox", tmp_path / "out", tmp_path / "state"
+    inbox.mkdir()
+    config = build_config(
+        {
+            "watch": {"state_dir": str(state)},
+            "alerts": {
+                "email": {"host": "127.0.0.1", "port": port, "security": "none", "to": [ANALYST]}
+            },
+        },
+        "test.yaml",
+    )
+    plan = plan_watch(config, config_dir=tmp_path, inbox=inbox, out=out, settle_seconds=0.1)
+    watcher = Watcher(plan)
+    watcher.start()
+    try:
+        assert watcher.wait_idle(15)
+        shutil.rmtree(out, ignore_errors=True)
+        out.write_text("not a folder", encoding="utf-8")
+        shutil.copy(FIXTURES / "bwl-metals-pass.csv", inbox / "run.csv")
+        assert watcher.wait(15), "the daemon did not stop on the fault"
+    finally:
+        watcher.stop()
+    assert watcher.fault is not None
+    subjects = [r.message()["Subject"] for r in handler.received]
+    assert any(s.startswith("[calwarden] DAEMON") and "fault" in s for s in subjects), subjects
+
+
+def test_with_the_ledger_unusable_the_alert_is_written_and_sent_directly(
+    tmp_path: Path, server: tuple[Recorder, int]
+) -> None:
+    """emergency_alert needs no ledger: an .eml in the outbox folder and a message sent."""
+    handler, port = server
+    settings = AlertSettings.model_validate(
+        {"email": {"host": "127.0.0.1", "port": port, "security": "none", "to": [ANALYST]}}
+    )
+    alert = daemon_trouble("daemon_fault", "calwarden stopped after a fault", reason="disk full")
+    emergency_alert(tmp_path, settings, alert)
+    (written,) = (tmp_path / OUTBOX_FOLDER).glob("*-daemon.eml")
+    assert "disk full" in _parse(written).get_body(("plain",)).get_content()  # type: ignore[union-attr]
+    wait_for(lambda: handler.received, what="the emergency message")
+    assert handler.received[0].rcpt_tos == (ANALYST,)
