@@ -110,6 +110,7 @@ class AlertSender:
         self._requests_lock = threading.Lock()
         self._thread: threading.Thread | None = None
         self._outbox: Outbox | None = None
+        self._release_failed = False
         self.fault: str | None = None
 
     # ------------------------------------------------------------------ life cycle
@@ -144,6 +145,7 @@ class AlertSender:
         except LedgerError as error:
             self.fault = str(error)
             log.critical("alert_sender_fault", reason=str(error))
+            self._settled.set()
             return
         try:
             while not self._stop.is_set():
@@ -156,13 +158,13 @@ class AlertSender:
                     # The worker will meet the same fault and stop the daemon; keep trying.
                     log.error("alert_sender_ledger_error", reason=str(error))
                     wait = _IDLE_WAIT
+                except Exception:  # a bug of ours: said loudly; the alerts stay in the outbox
+                    log.exception("alert_sender_bug")
+                    wait = _IDLE_WAIT
                 with self._requests_lock:
                     if requests == self._requests and wait > 0:
                         self._settled.set()
                 self._wake.wait(max(0.0, min(wait, _IDLE_WAIT)))
-        except Exception as error:  # a bug of ours: say so loudly; alerts stay in the outbox
-            self.fault = f"internal error: {type(error).__name__}: {error}"
-            log.exception("alert_sender_bug")
         finally:
             self._settled.set()
             self._outbox.close()
@@ -185,7 +187,7 @@ class AlertSender:
             window = self.settings.throttle.window_minutes * 60
             oldest = self._outbox.oldest_release_since(now - window)
             waits.append((oldest + window - now) if oldest is not None else 0.0)
-        if self._outbox.alerts_in("new", limit=1):
+        if self._outbox.alerts_in("new", limit=1) and not self._release_failed:
             waits.append(0.0)
         return max(0.0, min(waits))
 
@@ -206,12 +208,12 @@ class AlertSender:
         held: list[StoredAlert] = []
         backlog = bool(self._outbox.alerts_in("gathered", limit=1))
         released = self._outbox.released_since(self._clock() - window)
+        self._release_failed = False
         for alert in self._outbox.alerts_in("new"):
             if alert.kind in _UNTHROTTLED:
-                self._release(alert)
+                self._try_release(alert)
             elif not backlog and not held and released < quota:
-                self._release(alert)
-                released += 1
+                released += self._try_release(alert)
             else:
                 held.append(alert)  # in order: once one waits, the later ones wait too
         if held:
@@ -243,7 +245,7 @@ class AlertSender:
             log.info("alert_digest_made", alert=digest_id, alerts=len(gathered))
             for alert in self._outbox.alerts_in("new"):
                 if alert.kind == "digest":
-                    self._release(alert)
+                    self._try_release(alert)
 
     def _recipients(self, alert: StoredAlert) -> tuple[str, ...]:
         if alert.kind == "digest":
@@ -295,6 +297,19 @@ class AlertSender:
             if len(pictures) >= self.settings.inline_charts:
                 break
         return pictures
+
+    def _try_release(self, alert: StoredAlert) -> bool:
+        """Release one alert; a failure (the outbox folder unwritable, a bug composing this
+        one alert) is logged and tried again next cycle, without holding up the others."""
+        try:
+            self._release(alert)
+        except LedgerError:
+            raise
+        except Exception as error:
+            self._release_failed = True
+            log.error("alert_not_written", alert=alert.id, kind=alert.kind, error=repr(error))
+            return False
+        return True
 
     def _release(self, alert: StoredAlert) -> None:
         assert self._outbox is not None
@@ -352,6 +367,12 @@ class AlertSender:
                 )
         except DeliveryError as error:
             self._failed(delivery, error, started)
+            return
+        except LedgerError:
+            raise
+        except Exception as error:  # a bug of ours: the message waits and is tried again
+            log.exception("alert_delivery_bug", alert=alert.id)
+            self._failed(delivery, DeliveryError(f"internal error: {error!r}"), started)
             return
         self._outbox.finish(delivery, "sent", now_iso())
         log.info(

@@ -16,10 +16,12 @@ a path on a queue; one worker thread does everything else:
 * delete events are ignored: the raw data belongs to the lab, and a verdict
   stays when its file goes.
 
-The worker is the ledger's only writer. A fault it cannot recover from (the
-ledger or the output folder unwritable, the disk full) stops it with
-:attr:`Watcher.fault` set; the command line then exits non-zero so that the
-service manager restarts the daemon.
+The worker writes the ledger's evaluations and control log; the alert sender
+(:mod:`daemon.alert_sender`, its own thread and connection) writes only its
+outbox tables. A fault the worker cannot recover from (the ledger or the output
+folder unwritable, the disk full) stops it with :attr:`Watcher.fault` set, after
+an alert saying so; the command line then exits non-zero so that the service
+manager restarts the daemon.
 """
 
 from __future__ import annotations
@@ -292,9 +294,10 @@ class Watcher:
             return
         alert = daemon_trouble(event, message, **details)
         try:
-            assert self._ledger is not None
+            if self._ledger is None:
+                raise LedgerError("the ledger is not open")
             self._ledger.record_alert(alert)
-        except (LedgerError, AssertionError) as error:
+        except LedgerError as error:
             log.error("alert_not_recorded", event=event, error=str(error))
             emergency_alert(self.plan.state_dir, self.plan.alerts, alert)
             return

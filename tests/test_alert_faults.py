@@ -12,11 +12,13 @@ from pathlib import Path
 import pytest
 from aiosmtpd.controller import Controller
 from mail_server import Recorder, free_port
+from structlog.testing import capture_logs
 from waiting import wait_for
 
-from daemon.alert_sender import OUTBOX_FOLDER, daemon_trouble, emergency_alert
+from daemon.alert_sender import OUTBOX_FOLDER, AlertSender, daemon_trouble, emergency_alert
 from daemon.alert_settings import AlertSettings
 from daemon.config import build_config, plan_watch
+from daemon.ledger import LEDGER_NAME, Ledger
 from daemon.watcher import Watcher
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -87,3 +89,27 @@ def test_with_the_ledger_unusable_the_alert_is_written_and_sent_directly(
     assert "disk full" in _parse(written).get_body(("plain",)).get_content()  # type: ignore[union-attr]
     wait_for(lambda: handler.received, what="the emergency message")
     assert handler.received[0].rcpt_tos == (ANALYST,)
+
+
+def test_an_outbox_folder_that_cannot_be_written_holds_the_alert_until_it_can(
+    tmp_path: Path,
+) -> None:
+    """A release that fails is logged and done later; the alert is not lost."""
+    state = tmp_path / "state"
+    ledger = Ledger(state / LEDGER_NAME)
+    ledger.record_alert(daemon_trouble("observer_restarted", "the folder observer restarted"))
+    ledger.close()
+    (state / OUTBOX_FOLDER).write_text("in the way", encoding="utf-8")
+    sender = AlertSender(state, AlertSettings())
+    with capture_logs() as events:
+        sender.start()
+        try:
+            wait_for(
+                lambda: any(e["event"] == "alert_not_written" for e in events),
+                what="the failed release logged",
+            )
+            (state / OUTBOX_FOLDER).unlink()
+            sender.wake()
+            wait_for(lambda: list((state / OUTBOX_FOLDER).glob("*-daemon.eml")), what="the .eml")
+        finally:
+            sender.stop()
