@@ -7,6 +7,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from mail_server import Recorder, free_port
 
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
@@ -22,3 +23,17 @@ def no_leaked_threads() -> Iterator[None]:
         thread.join(timeout=2)
     still = [t.name for t in leaked if t.is_alive()]
     assert not still, f"threads left running: {still}"
+
+
+@pytest.fixture
+def loopback_smtp() -> Iterator[tuple[Recorder, int]]:
+    """A real SMTP server (aiosmtpd) on a free loopback port, accepting every message."""
+    from aiosmtpd.controller import Controller
+
+    handler, port = Recorder(), free_port()
+    controller = Controller(handler, hostname="127.0.0.1", port=port)
+    controller.start()
+    try:
+        yield handler, port
+    finally:
+        controller.stop()

@@ -4,12 +4,10 @@ from __future__ import annotations
 
 import json
 import sqlite3
-from collections.abc import Iterator
 from datetime import datetime
 from pathlib import Path
 
 import pytest
-from aiosmtpd.controller import Controller
 from mail_server import Recorder, free_port
 
 from daemon.alert_sender import OUTBOX_FOLDER, AlertSender
@@ -19,18 +17,6 @@ from daemon.ledger import LEDGER_NAME, Ledger
 from daemon.outbox import Outbox
 
 ANALYST = "analyst@brindlewick.example"
-
-
-@pytest.fixture
-def server() -> Iterator[tuple[Recorder, int]]:
-    """A real SMTP server on a free loopback port, stopped when the test ends."""
-    handler, port = Recorder(), free_port()
-    controller = Controller(handler, hostname="127.0.0.1", port=port)
-    controller.start()
-    try:
-        yield handler, port
-    finally:
-        controller.stop()
 
 
 def _config(tmp_path: Path, email: dict[str, object]) -> Path:
@@ -51,10 +37,10 @@ def test_alert_test_without_smtp_writes_an_eml_and_says_so(
 
 
 def test_alert_test_delivers_through_the_configured_server(
-    tmp_path: Path, server: tuple[Recorder, int], capsys: pytest.CaptureFixture[str]
+    tmp_path: Path, loopback_smtp: tuple[Recorder, int], capsys: pytest.CaptureFixture[str]
 ) -> None:
     """alert test hands one TEST message to the server and names who got it."""
-    handler, port = server
+    handler, port = loopback_smtp
     config = _config(
         tmp_path, {"host": "127.0.0.1", "port": port, "security": "none", "to": [ANALYST]}
     )
@@ -80,12 +66,12 @@ def test_alert_test_with_the_server_unreachable_exits_2_saying_why(
 
 def test_alert_test_with_a_missing_password_variable_exits_2_naming_it(
     tmp_path: Path,
-    server: tuple[Recorder, int],
+    loopback_smtp: tuple[Recorder, int],
     capsys: pytest.CaptureFixture[str],
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     """A login whose password variable is unset: exit 2, naming the variable, nothing sent."""
-    handler, port = server
+    handler, port = loopback_smtp
     monkeypatch.delenv("BWL_UNSET_PASSWORD", raising=False)
     config = _config(
         tmp_path,

@@ -5,13 +5,10 @@ from __future__ import annotations
 import email
 import email.policy
 import shutil
-from collections.abc import Iterator
 from email.message import EmailMessage
 from pathlib import Path
 
-import pytest
-from aiosmtpd.controller import Controller
-from mail_server import Recorder, free_port
+from mail_server import Recorder
 from structlog.testing import capture_logs
 from waiting import wait_for
 
@@ -31,23 +28,11 @@ def _parse(path: Path) -> EmailMessage:
     return parsed
 
 
-@pytest.fixture
-def server() -> Iterator[tuple[Recorder, int]]:
-    """A real SMTP server on a free loopback port, stopped when the test ends."""
-    handler, port = Recorder(), free_port()
-    controller = Controller(handler, hostname="127.0.0.1", port=port)
-    controller.start()
-    try:
-        yield handler, port
-    finally:
-        controller.stop()
-
-
 def test_an_output_fault_sends_a_daemon_alert_before_the_daemon_stops(
-    tmp_path: Path, server: tuple[Recorder, int]
+    tmp_path: Path, loopback_smtp: tuple[Recorder, int]
 ) -> None:
     """The output folder replaced by a file: the fault's alert reaches the server."""
-    handler, port = server
+    handler, port = loopback_smtp
     inbox, out, state = tmp_path / "inbox", tmp_path / "out", tmp_path / "state"
     inbox.mkdir()
     config = build_config(
@@ -76,10 +61,10 @@ def test_an_output_fault_sends_a_daemon_alert_before_the_daemon_stops(
 
 
 def test_with_the_ledger_unusable_the_alert_is_written_and_sent_directly(
-    tmp_path: Path, server: tuple[Recorder, int]
+    tmp_path: Path, loopback_smtp: tuple[Recorder, int]
 ) -> None:
     """emergency_alert needs no ledger: an .eml in the outbox folder and a message sent."""
-    handler, port = server
+    handler, port = loopback_smtp
     settings = AlertSettings.model_validate(
         {"email": {"host": "127.0.0.1", "port": port, "security": "none", "to": [ANALYST]}}
     )

@@ -293,17 +293,14 @@ def test_starttls_certificate_not_trusted_is_a_config_problem(
     assert "certificate" in error
 
 
-def test_login_with_the_password_from_the_environment_delivers(
+def watch_with_login(
     inbox: Path,
     out: Path,
     smtp_server: StartServer,
     start: StartWatcher,
-    events: Events,
     certificates: Certificates,
-    monkeypatch: pytest.MonkeyPatch,
-) -> None:
-    """A server requiring AUTH (after STARTTLS) takes the login; the password is in password_env."""
-    monkeypatch.setenv(PASSWORD_ENV, PASSWORD)
+) -> tuple[Recorder, WatchPlan]:
+    """A server requiring STARTTLS and AUTH, and a watcher logging in with PASSWORD_ENV."""
     handler = Recorder()
     port = free_port()
     smtp_server(
@@ -324,6 +321,21 @@ def test_login_with_the_password_from_the_environment_delivers(
         password_env=PASSWORD_ENV,
     )
     start(plan)
+    return handler, plan
+
+
+def test_login_with_the_password_from_the_environment_delivers(
+    inbox: Path,
+    out: Path,
+    smtp_server: StartServer,
+    start: StartWatcher,
+    events: Events,
+    certificates: Certificates,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """A server requiring AUTH (after STARTTLS) takes the login; the password is in password_env."""
+    monkeypatch.setenv(PASSWORD_ENV, PASSWORD)
+    handler, _ = watch_with_login(inbox, out, smtp_server, start, certificates)
     drop_failing_run(inbox)
     wait_event(events, "alert_sent")
     (received,) = handler.received
@@ -342,26 +354,7 @@ def test_wrong_password_is_a_config_problem_and_never_written(
 ) -> None:
     """A refused login keeps the alert waiting, logs a config problem, and leaks no password."""
     monkeypatch.setenv(PASSWORD_ENV, WRONG_PASSWORD)
-    handler = Recorder()
-    port = free_port()
-    smtp_server(
-        handler,
-        port,
-        tls_context=certificates.server_context,
-        require_starttls=True,
-        authenticator=authenticator,
-        auth_required=True,
-    )
-    plan = plan_for(
-        inbox,
-        out,
-        port,
-        security="starttls",
-        ca_file=str(certificates.ca_file),
-        username=USERNAME,
-        password_env=PASSWORD_ENV,
-    )
-    start(plan)
+    handler, plan = watch_with_login(inbox, out, smtp_server, start, certificates)
     drop_failing_run(inbox)
     (problem, *_) = wait_event(events, "alert_config_problem", 2)
     assert "refused the login" in problem["reason"] and USERNAME in problem["reason"]
