@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 import threading
-from collections.abc import Iterator
+from collections.abc import Iterator, MutableMapping
 from pathlib import Path
+from typing import Any
 
 import pytest
 from mail_server import Recorder, free_port
+from structlog.testing import capture_logs
 
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
@@ -37,3 +39,26 @@ def loopback_smtp() -> Iterator[tuple[Recorder, int]]:
         yield handler, port
     finally:
         controller.stop()
+
+
+@pytest.fixture
+def events() -> Iterator[list[MutableMapping[str, Any]]]:
+    """Every structlog event logged during the test (by any thread)."""
+    with capture_logs() as captured:
+        yield captured
+
+
+@pytest.fixture
+def inbox(tmp_path: Path) -> Path:
+    """An empty inbox folder for a watcher."""
+    folder = tmp_path / "inbox"
+    folder.mkdir()
+    return folder
+
+
+@pytest.fixture
+def out(tmp_path: Path) -> Path:
+    """An empty output folder for a watcher."""
+    folder = tmp_path / "out"
+    folder.mkdir()
+    return folder

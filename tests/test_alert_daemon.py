@@ -37,7 +37,6 @@ from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import SMTP as SMTPServer
 from aiosmtpd.smtp import Envelope, Session
 from mail_server import free_port
-from structlog.testing import capture_logs
 from waiting import wait_for
 
 import daemon.watcher as watcher_module
@@ -258,13 +257,6 @@ class Running:
 
 
 @pytest.fixture
-def events() -> Iterator[list[dict[str, Any]]]:
-    """Every structlog event logged during the test (by any thread)."""
-    with capture_logs() as captured:
-        yield captured
-
-
-@pytest.fixture
 def start(events: list[dict[str, Any]]) -> Iterator[Callable[[WatchPlan], Running]]:
     """Start in-process watchers (and so their alert senders); all stopped after the test."""
     started: list[Watcher] = []
@@ -283,20 +275,6 @@ def start(events: list[dict[str, Any]]) -> Iterator[Callable[[WatchPlan], Runnin
             watcher.stop()
         for watcher in started:
             assert watcher.wait(15), "the worker did not end"
-
-
-@pytest.fixture
-def inbox(tmp_path: Path) -> Path:
-    folder = tmp_path / "inbox"
-    folder.mkdir()
-    return folder
-
-
-@pytest.fixture
-def out(tmp_path: Path) -> Path:
-    folder = tmp_path / "out"
-    folder.mkdir()
-    return folder
 
 
 # --------------------------------------------------------------------------- the process

@@ -22,7 +22,6 @@ import trustme
 from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import SMTP, AuthResult, Envelope, LoginPassword, Session
 from mail_server import Recorder, free_port
-from structlog.testing import capture_logs
 from waiting import wait_for
 
 from daemon.alert_sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
@@ -103,27 +102,6 @@ def authenticator(
 # --------------------------------------------------------------------------- the daemon
 
 Events = list[MutableMapping[str, Any]]
-
-
-@pytest.fixture
-def events() -> Iterator[Events]:
-    """Every structlog event logged during the test (by any thread)."""
-    with capture_logs() as captured:
-        yield captured
-
-
-@pytest.fixture
-def inbox(tmp_path: Path) -> Path:
-    folder = tmp_path / "inbox"
-    folder.mkdir()
-    return folder
-
-
-@pytest.fixture
-def out(tmp_path: Path) -> Path:
-    folder = tmp_path / "out"
-    folder.mkdir()
-    return folder
 
 
 StartWatcher = Callable[[WatchPlan], Watcher]

@@ -13,7 +13,6 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from structlog.testing import capture_logs
 from waiting import wait_for
 
 from daemon.config import AppConfig, Inbox, WatchPlan, plan_watch
@@ -41,12 +40,6 @@ def plan(tmp_path: Path) -> WatchPlan:
     return plan_watch(
         AppConfig(), inbox=tmp_path / "inbox", out=tmp_path / "out", settle_seconds=SETTLE
     )
-
-
-@pytest.fixture
-def events() -> Iterator[list[dict[str, Any]]]:
-    with capture_logs() as captured:
-        yield captured
 
 
 class Run:

@@ -16,7 +16,6 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from structlog.testing import capture_logs
 from waiting import wait_for
 from watchdog.observers.polling import PollingObserver
 
@@ -67,13 +66,6 @@ class Running:
 
 
 @pytest.fixture
-def events() -> Iterator[list[dict[str, Any]]]:
-    """Every structlog event logged during the test (by any thread)."""
-    with capture_logs() as captured:
-        yield captured
-
-
-@pytest.fixture
 def start(events: list[dict[str, Any]]) -> Iterator[Callable[[WatchPlan], Running]]:
     """Start watchers; each is stopped when the test ends, whatever happened."""
     started: list[Watcher] = []
@@ -90,20 +82,6 @@ def start(events: list[dict[str, Any]]) -> Iterator[Callable[[WatchPlan], Runnin
         watcher.stop()
     for watcher in started:
         assert watcher.wait(10), "the worker did not end"
-
-
-@pytest.fixture
-def inbox(tmp_path: Path) -> Path:
-    folder = tmp_path / "inbox"
-    folder.mkdir()
-    return folder
-
-
-@pytest.fixture
-def out(tmp_path: Path) -> Path:
-    folder = tmp_path / "out"
-    folder.mkdir()
-    return folder
 
 
 def plan_for(
