@@ -401,6 +401,19 @@ def test_temporary_451_on_data_is_retried_and_delivered_once(
 REFUSED = "550 5.1.1 mailbox unavailable"
 
 
+def watch_refused(
+    inbox: Path, out: Path, smtp_server: StartServer, start: StartWatcher
+) -> tuple[Recorder, WatchPlan]:
+    """A server refusing every recipient with 550, and a watcher given a failing run."""
+    handler = Recorder(rcpt_replies=[REFUSED] * len(RECIPIENTS))
+    port = free_port()
+    smtp_server(handler, port)
+    plan = plan_for(inbox, out, port)
+    start(plan)
+    drop_failing_run(inbox)
+    return handler, plan
+
+
 def test_550_on_every_recipient_makes_a_dead_letter(
     inbox: Path,
     out: Path,
@@ -409,12 +422,7 @@ def test_550_on_every_recipient_makes_a_dead_letter(
     events: Events,
 ) -> None:
     """Every recipient refused with 550: dead at once, a copy and a note in dead-letter/."""
-    handler = Recorder(rcpt_replies=[REFUSED] * len(RECIPIENTS))
-    port = free_port()
-    smtp_server(handler, port)
-    plan = plan_for(inbox, out, port)
-    start(plan)
-    drop_failing_run(inbox)
+    handler, plan = watch_refused(inbox, out, smtp_server, start)
     (dead,) = wait_event(events, "alert_dead_letter")
     assert "550" in dead["reason"]
     assert not named(events, "alert_retry") and not named(events, "alert_sent")
@@ -436,12 +444,7 @@ def test_status_reports_the_dead_letter(
     events: Events,
 ) -> None:
     """`calwarden status` names the dead letter, where it is and why it was refused."""
-    handler = Recorder(rcpt_replies=[REFUSED] * len(RECIPIENTS))
-    port = free_port()
-    smtp_server(handler, port)
-    plan = plan_for(inbox, out, port)
-    start(plan)
-    drop_failing_run(inbox)
+    _, plan = watch_refused(inbox, out, smtp_server, start)
     wait_event(events, "alert_dead_letter")
     (eml,) = (plan.state_dir / OUTBOX_FOLDER).glob("*.eml")
     report, found = status_report(plan.state_dir)
