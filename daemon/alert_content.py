@@ -37,6 +37,9 @@ HEADER_PIECE_LIMIT = 80
 SUBJECT_LIMIT = 200
 #: Findings and re-runs listed in one message; the verdict attached has them all.
 LISTED_LIMIT = 40
+#: A verdict larger than this is not attached (mail servers commonly refuse messages
+#: over 10–25 MB, and base64 adds a third); the message says where it is instead.
+ATTACHMENT_LIMIT_BYTES = 4_000_000
 
 _WORDS = {
     "fail": "FAIL",
@@ -320,6 +323,9 @@ def _sections(alert: Mapping[str, Any]) -> tuple[str, list[_Section]]:
         if alert.get("flagged"):
             files.append(f"flagged: {alert.get('flagged')}")
         files.append(f"judged:  {alert.get('evaluated_at')}")
+        if alert.get("verdict_not_attached"):
+            size = int(alert["verdict_not_attached"]) / 1e6
+            files.append(f"the verdict ({size:.1f} MB) is too large to attach: open it there")
         sections.append(_Section("Where", tuple(files)))
     return opening, sections
 
@@ -375,6 +381,9 @@ def email_message(
     charts: Sequence[tuple[str, bytes]] = (),
 ) -> EmailMessage:
     """The RFC 5322 message of an alert: plain text, an HTML alternative, the verdict."""
+    if verdict is not None and len(verdict) > ATTACHMENT_LIMIT_BYTES:
+        alert = {**alert, "verdict_not_attached": len(verdict)}
+        verdict = None
     message = EmailMessage(policy=SMTP)
     message["Subject"] = subject(alert)
     message["From"] = sender

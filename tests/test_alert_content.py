@@ -501,3 +501,19 @@ def test_webhook_payload_carries_id_and_time() -> None:
     assert payload["id"] == "fail:k"
     assert payload["created_at"] == CREATED
     assert payload["body"] == text_body(_fail_alert())
+
+
+def test_a_verdict_too_large_to_attach_is_named_instead() -> None:
+    """A verdict over the attachment limit is left out and the text says where it is."""
+    from daemon.alert_content import ATTACHMENT_LIMIT_BYTES
+
+    message = email_message(
+        _fail_alert(),
+        dedupe_key="fail:icpms:run.csv:v1:abc",
+        created_at="2026-12-01T08:00:00.000+00:00",
+        sender="calwarden@brindlewick.example",
+        recipients=["analyst@brindlewick.example"],
+        verdict=b"{" + b" " * ATTACHMENT_LIMIT_BYTES + b"}",
+    )
+    assert not list(message.iter_attachments())
+    assert "too large to attach" in message.get_body(("plain",)).get_content()  # type: ignore[union-attr]
