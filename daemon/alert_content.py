@@ -226,14 +226,26 @@ def _finding_line(finding: Mapping[str, Any]) -> str:
     return f"[{finding.get('rule')}] {finding.get('message')}"
 
 
+#: Why a sample is re-run, in the words of the message (the findings above give details).
+_WHY = {
+    "over_range": "over the calibrated range",
+    "calibration_failed": "its calibration failed",
+    "no_calibration": "no usable calibration",
+    "check_failed": "a bracketing check standard failed",
+    "not_bracketed": "no check standard brackets it",
+    "istd_out": "its internal standard is out of limits",
+    "not_quantifiable": "no concentration gives its response",
+}
+
+
 def _rerun_line(rerun: Mapping[str, Any]) -> str:
     seq = f" (seq {rerun['seq']})" if rerun.get("seq") is not None else ""
     text = f"{rerun.get('sample_id')}{seq}: {', '.join(rerun.get('analytes', []))}"
+    reasons = [_WHY.get(str(flag), str(flag)) for flag in rerun.get("flags") or []]
+    if reasons:
+        text += f": {'; '.join(reasons)}"
     if rerun.get("suggested_dilution"):
         text += f"; dilute to {rerun['suggested_dilution']:g}× in total"
-    reasons = rerun.get("reasons") or rerun.get("flags") or []
-    if reasons:
-        text += f" ({'; '.join(str(r) for r in reasons[:2])})"
     return text
 
 

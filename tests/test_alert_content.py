@@ -434,7 +434,7 @@ def test_text_body_gives_the_suggested_dilution(failing_alert: dict[str, Any]) -
     line = next(
         line for line in text_body(failing_alert).splitlines() if line.startswith("  - BW-1124-18")
     )
-    assert "Cu; dilute to 5× in total" in line
+    assert "Cu: over the calibrated range; dilute to 5× in total" in line
 
 
 def test_text_body_carries_the_caution(failing_alert: dict[str, Any]) -> None:
