@@ -250,6 +250,18 @@ def _config(args: argparse.Namespace) -> int:
     layout = "an export format" if config.format else "the native CSV format"
     inboxes = f", {len(config.inboxes)} inbox(es)" if config.inboxes else ""
     print(f"{args.file}: valid ({overrides} analyte override(s), reads {layout}{inboxes})")
+    alerts = config.alerts
+    if not alerts.enabled:
+        print("alerts: off")
+    elif alerts.email.host:
+        email = alerts.email
+        print(
+            f"alerts: e-mail via {email.host}:{email.effective_port} ({email.security}), "
+            f"{len(alerts.routes)} route(s); `calwarden alert test --config {args.file}` "
+            "sends a test message"
+        )
+    else:
+        print("alerts: written as .eml files in <state>/outbox/ only (no alerts.email.host)")
     return EXIT_PASS
 
 
