@@ -122,3 +122,15 @@ def test_the_daily_summary_counts_the_day_once(tmp_path: Path) -> None:
     written = sorted((state / OUTBOX_FOLDER).glob("*-summary.eml"))
     assert len(written) == 1
     assert b"DAILY" in written[0].read_bytes()
+
+
+def test_config_check_says_where_alerts_go(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """config check names the SMTP server alerts go through, or says they stay files."""
+    config = _config(tmp_path, {"host": "mail.brindlewick.example", "to": [ANALYST]})
+    assert main(["config", "check", str(config)]) == 0
+    assert "alerts: e-mail via mail.brindlewick.example:587 (starttls)" in capsys.readouterr().out
+    config.write_text("{}", encoding="utf-8")
+    assert main(["config", "check", str(config)]) == 0
+    assert "written as .eml files" in capsys.readouterr().out
