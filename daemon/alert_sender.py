@@ -44,7 +44,7 @@ from daemon.alert_content import (
 )
 from daemon.alert_settings import AlertSettings
 from daemon.alert_transport import DeliveryError, post_webhook, send_email
-from daemon.control_log import ControlSettings
+from daemon.control_log import ControlSettings, series_name
 from daemon.ledger import LEDGER_NAME, LedgerError, NewAlert, SeriesKey
 from daemon.outbox import Delivery, Outbox, StoredAlert
 from daemon.outputs import atomic_write
@@ -224,28 +224,33 @@ class AlertSender:
             return  # nothing waits, or the window is still full: the digest comes later
         gathered = self._outbox.alerts_in("gathered")
         if gathered:
-            when = now_iso()
-            summary = digest_alert([a.summary for a in gathered], when)
-            summary["recipients"] = list(
-                dict.fromkeys(
-                    address
-                    for a in gathered
-                    for address in self.settings.recipients(a.kind, a.inbox, a.instrument)
-                )
+            self._send_digest(gathered)
+
+    def _send_digest(self, gathered: list[StoredAlert]) -> None:
+        """One digest standing for the gathered alerts, released at once."""
+        assert self._outbox is not None
+        when = now_iso()
+        summary = digest_alert([a.summary for a in gathered], when)
+        summary["recipients"] = list(
+            dict.fromkeys(
+                address
+                for a in gathered
+                for address in self.settings.recipients(a.kind, a.inbox, a.instrument)
             )
-            digest = NewAlert(
-                dedupe_key=f"digest:{gathered[0].id}-{gathered[-1].id}",
-                kind="digest",
-                inbox=None,
-                instrument=None,
-                created_at=when,
-                summary=payload_bytes(summary),
-            )
-            digest_id = self._outbox.make_digest(digest, [a.id for a in gathered], self._clock())
-            log.info("alert_digest_made", alert=digest_id, alerts=len(gathered))
-            for alert in self._outbox.alerts_in("new"):
-                if alert.kind == "digest":
-                    self._try_release(alert)
+        )
+        digest = NewAlert(
+            dedupe_key=f"digest:{gathered[0].id}-{gathered[-1].id}",
+            kind="digest",
+            inbox=None,
+            instrument=None,
+            created_at=when,
+            summary=payload_bytes(summary),
+        )
+        digest_id = self._outbox.make_digest(digest, [a.id for a in gathered], self._clock())
+        log.info("alert_digest_made", alert=digest_id, alerts=len(gathered))
+        for alert in self._outbox.alerts_in("new"):
+            if alert.kind == "digest":
+                self._try_release(alert)
 
     def _recipients(self, alert: StoredAlert) -> tuple[str, ...]:
         if alert.kind == "digest":
@@ -292,7 +297,7 @@ class AlertSender:
             except Exception as error:  # a picture is a courtesy; the alert goes without it
                 log.warning("alert_chart_failed", alert=alert.id, error=repr(error))
                 continue
-            caption = safe_name(f"{key.kind} {key.analyte} {key.level}".strip())
+            caption = safe_name(series_name(key))
             pictures.append((caption, png))
             if len(pictures) >= self.settings.inline_charts:
                 break
