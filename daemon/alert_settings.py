@@ -14,7 +14,9 @@ import unicodedata
 from pathlib import Path
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
+
+from daemon.section import Section
 
 #: What can raise an alert.
 #: fail: a run failed its criteria; error: a file could not be judged;
@@ -22,10 +24,6 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator, model_valida
 #: daemon: the daemon itself is in trouble (observer restarted, inbox gone, fault).
 AlertKind = Literal["fail", "error", "control", "daemon"]
 ALERT_KINDS: tuple[AlertKind, ...] = ("fail", "error", "control", "daemon")
-
-
-class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
 
 def _addresses(values: tuple[str, ...]) -> tuple[str, ...]:
@@ -39,7 +37,7 @@ def _addresses(values: tuple[str, ...]) -> tuple[str, ...]:
     return values
 
 
-class EmailSettings(_Section):
+class EmailSettings(Section):
     """The SMTP server alerts are sent through; no host: ``.eml`` files only."""
 
     host: str | None = Field(
@@ -128,7 +126,7 @@ class EmailSettings(_Section):
         return os.environ[name]
 
 
-class Route(_Section):
+class Route(Section):
     """Who hears about which alerts: every given condition must match."""
 
     inbox: str | None = Field(default=None, description="only alerts from this inbox")
@@ -151,7 +149,7 @@ class Route(_Section):
         )
 
 
-class ThrottleSettings(_Section):
+class ThrottleSettings(Section):
     """Beyond this many messages in a window, alerts wait and go out as one digest."""
 
     max_messages: int = Field(
@@ -168,7 +166,7 @@ class ThrottleSettings(_Section):
     )
 
 
-class RetrySettings(_Section):
+class RetrySettings(Section):
     """How a message the server could not take now is tried again."""
 
     first_seconds: float = Field(
@@ -186,7 +184,7 @@ class RetrySettings(_Section):
     )
 
 
-class WebhookSettings(_Section):
+class WebhookSettings(Section):
     """An HTTP POST of each alert as JSON, for a chat tool's incoming hook."""
 
     url: str | None = Field(default=None, description="absent: no webhook")
@@ -205,7 +203,7 @@ class WebhookSettings(_Section):
         return value
 
 
-class DailySummarySettings(_Section):
+class DailySummarySettings(Section):
     """Once a day, one message counting every file judged in the last 24 hours."""
 
     enabled: bool = Field(default=False, description="send the daily summary (off by default)")
@@ -219,7 +217,7 @@ class DailySummarySettings(_Section):
         return value
 
 
-class AlertSettings(_Section):
+class AlertSettings(Section):
     """What raises an alert and where it goes."""
 
     enabled: bool = Field(

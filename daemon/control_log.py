@@ -25,9 +25,10 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import Field, field_validator
 
 from daemon.ledger import Ledger, NewLimits, NewPoint, SeriesKey, StoredLimits, StoredPoint
+from daemon.section import Section
 from rules.control import (
     BASELINE_SIZE,
     DEFAULT_RULES,
@@ -50,11 +51,7 @@ _HISTORY = 40  # points of history a rule can need: 10-x across two levels needs
 _BASELINE_SEARCH = 2000  # points looked through for a baseline spanning enough runs
 
 
-class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-class FixedLimits(_Section):
+class FixedLimits(Section):
     """A centre and SD given by the laboratory for some series."""
 
     analyte: str = Field(description="the analyte (or internal standard) of the series")
@@ -75,7 +72,7 @@ class FixedLimits(_Section):
         )
 
 
-class ControlSettings(_Section):
+class ControlSettings(Section):
     """The ``control`` section: the control-chart log, its limits and its rules."""
 
     enabled: bool = Field(default=True, description="log control points and apply the rules")

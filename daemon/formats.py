@@ -11,8 +11,9 @@ from __future__ import annotations
 import re
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
 
+from daemon.section import Section
 from rules.model import Kind
 
 #: Native fields a layout may fill (the columns of the native format).
@@ -20,10 +21,6 @@ MAPPABLE_FIELDS = (
     "seq", "sample_id", "kind", "analyte", "response", "nominal", "istd", "istd_response",
     "dilution", "unit", "acquired", "parent", "added", "run", "instrument",
 )  # fmt: skip
-
-
-class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
 
 def _valid_regex(pattern: str) -> str:
@@ -34,7 +31,7 @@ def _valid_regex(pattern: str) -> str:
     return pattern
 
 
-class ColumnByPattern(_Section):
+class ColumnByPattern(Section):
     """A column found by a regular expression searched in the header name, ignoring case."""
 
     regex: str
@@ -46,7 +43,7 @@ class ColumnByPattern(_Section):
 ColumnRef = str | ColumnByPattern
 
 
-class HeaderSection(_Section):
+class HeaderSection(Section):
     """Where the header row is."""
 
     skip_lines: int = Field(default=0, ge=0, description="lines before the header row")
@@ -57,7 +54,7 @@ class HeaderSection(_Section):
     )
 
 
-class FooterSection(_Section):
+class FooterSection(Section):
     """Lines after the data that are not data (summaries, signatures)."""
 
     stop_at: str | None = Field(
@@ -82,7 +79,7 @@ class FooterSection(_Section):
         return tuple(_valid_regex(pattern) for pattern in value)
 
 
-class KindPattern(_Section):
+class KindPattern(Section):
     """Sample ids in which the regex ``match`` is found (ignoring case) are of kind ``kind``."""
 
     match: str
@@ -91,7 +88,7 @@ class KindPattern(_Section):
     _check = field_validator("match")(_valid_regex)
 
 
-class KindSection(_Section):
+class KindSection(Section):
     """How each row's kind is found when the export does not use calwarden's words."""
 
     codes: dict[str, Kind] = Field(
@@ -107,7 +104,7 @@ class KindSection(_Section):
     )
 
 
-class NominalSection(_Section):
+class NominalSection(Section):
     """Known concentrations when the export does not carry them."""
 
     by_sample_id: dict[str, float] = Field(
@@ -132,7 +129,7 @@ class NominalSection(_Section):
         return self
 
 
-class WideSection(_Section):
+class WideSection(Section):
     """One row per injection, one response column per analyte."""
 
     response: str = Field(
@@ -156,7 +153,7 @@ class WideSection(_Section):
         return value
 
 
-class ExportFormat(_Section):
+class ExportFormat(Section):
     """The layout of an instrument's export; every key has a default."""
 
     file_type: Literal["csv", "xlsx", "auto"] = Field(

@@ -11,9 +11,10 @@ import re
 from pathlib import Path
 from typing import Any
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import Field, field_validator
 
 from daemon.formats import ExportFormat
+from daemon.section import Section
 from rules.criteria import Criteria
 
 #: Names an instrument or its software writes while a file is still being written.
@@ -21,11 +22,7 @@ DEFAULT_IGNORE = ("~*", ".*", "*.tmp", "*.part")
 _SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 
 
-class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-class WatchSettings(_Section):
+class WatchSettings(Section):
     """How the watcher behaves; shared by every inbox unless an inbox says otherwise."""
 
     out: Path | None = Field(
@@ -80,7 +77,7 @@ class WatchSettings(_Section):
     log_backups: int = Field(default=5, ge=0, le=100, description="rotated log files kept")
 
 
-class InboxSettings(_Section):
+class InboxSettings(Section):
     """One folder an instrument exports into."""
 
     path: Path = Field(description="the folder to watch (relative: to the configuration file)")
