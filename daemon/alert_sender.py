@@ -45,7 +45,7 @@ from daemon.alert_content import (
 from daemon.alert_settings import AlertSettings
 from daemon.alert_transport import DeliveryError, post_webhook, send_email
 from daemon.control_log import ControlSettings, series_name
-from daemon.ledger import LEDGER_NAME, LedgerError, NewAlert, SeriesKey
+from daemon.ledger import LEDGER_NAME, LedgerError, NewAlert, SeriesKey, timestamp
 from daemon.outbox import Delivery, Outbox, StoredAlert
 from daemon.outputs import atomic_write
 
@@ -59,14 +59,6 @@ _UNTHROTTLED = ("digest", "summary", "test", "daemon")
 _IDLE_WAIT = 5.0
 
 
-def _iso(moment: datetime) -> str:
-    return moment.astimezone(UTC).isoformat(timespec="milliseconds")
-
-
-def now_iso() -> str:
-    return _iso(datetime.now(UTC))
-
-
 def message_file_name(alert: StoredAlert) -> str:
     """``20261201T224012Z-000042-fail.eml``: sorts by time, names the alert."""
     moment = datetime.fromisoformat(alert.created_at).astimezone(UTC)
@@ -75,7 +67,7 @@ def message_file_name(alert: StoredAlert) -> str:
 
 def daemon_trouble(event: str, message: str, **details: object) -> NewAlert:
     """An outbox alert about the daemon itself (observer restarted, inbox gone, fault)."""
-    when = now_iso()
+    when = timestamp()
     return NewAlert(
         dedupe_key=f"daemon:{event}:{when}",
         kind="daemon",
@@ -229,7 +221,7 @@ class AlertSender:
     def _send_digest(self, gathered: list[StoredAlert]) -> None:
         """One digest standing for the gathered alerts, released at once."""
         assert self._outbox is not None
-        when = now_iso()
+        when = timestamp()
         summary = digest_alert([a.summary for a in gathered], when)
         summary["recipients"] = list(
             dict.fromkeys(
@@ -379,7 +371,7 @@ class AlertSender:
             log.exception("alert_delivery_bug", alert=alert.id)
             self._failed(delivery, DeliveryError(f"internal error: {error!r}"), started)
             return
-        self._outbox.finish(delivery, "sent", now_iso())
+        self._outbox.finish(delivery, "sent", timestamp())
         log.info(
             "alert_sent",
             alert=alert.id,
@@ -398,7 +390,7 @@ class AlertSender:
             reason = str(error) if error.permanent else f"gave up retrying: {error}"
             # The copy first: once the ledger says dead, the copy is there to be found.
             self._dead_letter(alert, delivery.channel, reason)
-            self._outbox.finish(delivery, "dead", now_iso(), reason)
+            self._outbox.finish(delivery, "dead", timestamp(), reason)
             log.error(
                 "alert_dead_letter",
                 alert=alert.id,
@@ -453,7 +445,7 @@ class AlertSender:
         key = f"summary:{due:%Y-%m-%d}"
         if self._outbox.has_alert(key):
             return
-        judged = self._outbox.judged_between(_iso(due - timedelta(days=1)), _iso(due))
+        judged = self._outbox.judged_between(timestamp(due - timedelta(days=1)), timestamp(due))
         counts: dict[str, Any] = {"pass": 0, "fail": 0, "error": 0}
         for outcome, *_ in judged:
             counts[outcome] = counts.get(outcome, 0) + 1
@@ -462,7 +454,7 @@ class AlertSender:
             for outcome, inbox, path, run in judged
             if outcome != "pass"
         ]
-        when = now_iso()
+        when = timestamp()
         content = {
             "kind": "summary",
             "day": f"{due:%Y-%m-%d}",
@@ -522,7 +514,7 @@ def send_test_message(settings: AlertSettings, state_dir: Path) -> list[str]:
     """
     import socket
 
-    when = now_iso()
+    when = timestamp()
     host = header_text(socket.gethostname(), 60)
     content = {
         "kind": "test",

@@ -392,10 +392,9 @@ def _status(args: argparse.Namespace) -> int:
 
 def _chart(args: argparse.Namespace) -> int:
     import csv
-    from datetime import UTC, datetime
 
     from daemon.control_log import SeriesFilter, export_rows, recompute_baselines
-    from daemon.ledger import LEDGER_NAME, Ledger, LedgerError
+    from daemon.ledger import LEDGER_NAME, Ledger, LedgerError, timestamp
 
     folders = _daemon_folders(args)
     if folders is None:
@@ -426,7 +425,7 @@ def _chart(args: argparse.Namespace) -> int:
                 print(f"{len(rows) - 1} control point(s) written to {args.file}")
             return EXIT_PASS
         if args.chart_command == "baseline":
-            now = datetime.now(UTC).isoformat(timespec="milliseconds")
+            now = timestamp()
             ledger = Ledger(ledger_path)
             try:
                 limits, skipped = recompute_baselines(ledger, config.control, chosen, now)

@@ -27,7 +27,6 @@ import hashlib
 import json
 import time
 from dataclasses import dataclass
-from datetime import UTC, datetime
 from pathlib import Path, PurePosixPath
 from typing import Any
 
@@ -38,7 +37,15 @@ from daemon.alert_settings import AlertSettings
 from daemon.chart_files import calibration_picture_name
 from daemon.config import AppConfig, Inbox
 from daemon.control_log import Assessment, amend, assess
-from daemon.ledger import Evaluation, Ledger, NewAlert, NewEvaluation, Seen, SeriesKey
+from daemon.ledger import (
+    Evaluation,
+    Ledger,
+    NewAlert,
+    NewEvaluation,
+    Seen,
+    SeriesKey,
+    timestamp,
+)
 from daemon.outputs import output_files, write_files
 from daemon.pipeline import Judgement, error_document, judge_file
 from daemon.report import render
@@ -101,10 +108,6 @@ def _count(document: dict[str, Any], severity: str) -> int:
     return sum(1 for finding in document.get("findings", []) if finding.get("severity") == severity)
 
 
-def _now() -> str:
-    return datetime.now(UTC).isoformat(timespec="milliseconds")
-
-
 class Intake:
     """Judges settled files of the watched inboxes; owns the ledger's writing connection."""
 
@@ -149,7 +152,7 @@ class Intake:
                 seen,
                 original,
                 calwarden_version=calwarden_version(),
-                evaluated_at=_now(),
+                evaluated_at=timestamp(),
             )
             log.info(
                 "file_duplicate",
@@ -212,7 +215,7 @@ class Intake:
         message = _first_failure(document)
         failures, warnings = _count(document, "fail"), _count(document, "warn")
         verdict_path = out_folder / f"{name}.verdict.json"
-        evaluated_at = _now()
+        evaluated_at = timestamp()
         alert = self._alert(
             inbox,
             relative,
@@ -348,7 +351,7 @@ class Intake:
             str(instrument),
             str(document.get("run") or relative),
             control_observations(judgement.run, judgement.verdict),
-            _now(),
+            timestamp(),
             replacing=(inbox.name, relative),
             failed_baselines=self._failed_baselines,
         )

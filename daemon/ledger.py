@@ -27,7 +27,19 @@ import zlib
 from collections.abc import Iterator
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
+
+
+def timestamp(moment: datetime | None = None) -> str:
+    """A time as the ledger stores it, e.g. ``2026-12-01T22:40:12.123+00:00``.
+
+    Every stored time has this one form (UTC, ISO 8601, milliseconds), so that
+    string order is time order: the daily summary selects evaluations by
+    comparing these strings.
+    """
+    return (moment or datetime.now(UTC)).astimezone(UTC).isoformat(timespec="milliseconds")
+
 
 SCHEMA_VERSION = 2  # 2: the alert outbox (a version-1 ledger is upgraded in place)
 LEDGER_NAME = "ledger.sqlite3"
