@@ -175,11 +175,11 @@ class AlertSender:
         upcoming = self._outbox.next_attempt()
         if upcoming is not None:
             waits.append(upcoming - now)
-        if self._outbox.alerts_in("gathered", limit=1):
+        if self._outbox.any_in("gathered"):
             window = self.settings.throttle.window_minutes * 60
-            oldest = self._outbox.oldest_release_since(now - window)
+            _, oldest = self._outbox.released_since(now - window)
             waits.append((oldest + window - now) if oldest is not None else 0.0)
-        if self._outbox.alerts_in("new", limit=1) and not self._release_failed:
+        if self._outbox.any_in("new") and not self._release_failed:
             waits.append(0.0)
         return max(0.0, min(waits))
 
@@ -198,8 +198,8 @@ class AlertSender:
         window = self.settings.throttle.window_minutes * 60
         quota = self.settings.throttle.max_messages
         held: list[StoredAlert] = []
-        backlog = bool(self._outbox.alerts_in("gathered", limit=1))
-        released = self._outbox.released_since(self._clock() - window)
+        backlog = self._outbox.any_in("gathered")
+        released, _ = self._outbox.released_since(self._clock() - window)
         self._release_failed = False
         for alert in self._outbox.alerts_in("new"):
             if alert.kind in _UNTHROTTLED:
@@ -212,8 +212,12 @@ class AlertSender:
             self._outbox.gather([alert.id for alert in held])
             for alert in held:
                 log.info("alert_gathered", alert=alert.id, kind=alert.kind, inbox=alert.inbox)
-        if not (held or backlog) or self._outbox.released_since(self._clock() - window) >= quota:
-            return  # nothing waits, or the window is still full: the digest comes later
+        if not (held or backlog):
+            return
+        # Counted again: the daemon alerts released above count towards the quota too.
+        released, _ = self._outbox.released_since(self._clock() - window)
+        if released >= quota:
+            return  # the window is still full: the digest comes later
         gathered = self._outbox.alerts_in("gathered")
         if gathered:
             self._send_digest(gathered)

@@ -83,22 +83,24 @@ class Outbox(Ledger):
         )
         return [_alert(row) for row in rows]
 
-    def released_since(self, since: float) -> int:
-        """Messages released one by one (not those inside a digest) since a time."""
-        row = self._one(
-            "SELECT COUNT(*) FROM alerts WHERE state = 'released' AND digest_id IS NULL "
-            "AND released_at >= ? AND kind NOT IN ('summary', 'test')",
-            (since,),
-        )
-        return int(row[0]) if row else 0  # type: ignore[call-overload]
+    def any_in(self, state: str) -> bool:
+        """Whether any alert is in this state (without reading their summaries)."""
+        return self._one("SELECT 1 FROM alerts WHERE state = ? LIMIT 1", (state,)) is not None
 
-    def oldest_release_since(self, since: float) -> float | None:
+    def released_since(self, since: float) -> tuple[int, float | None]:
+        """How many messages were released one by one since a time, and the oldest's time.
+
+        Those inside a digest, the daily summary and test messages do not count.
+        """
         row = self._one(
-            "SELECT MIN(released_at) FROM alerts WHERE state = 'released' AND digest_id IS NULL "
-            "AND released_at >= ? AND kind NOT IN ('summary', 'test')",
+            "SELECT COUNT(*), MIN(released_at) FROM alerts WHERE state = 'released' "
+            "AND digest_id IS NULL AND released_at >= ? AND kind NOT IN ('summary', 'test')",
             (since,),
         )
-        return None if row is None or row[0] is None else float(row[0])  # type: ignore[arg-type]
+        if row is None:
+            return 0, None
+        count, oldest = row
+        return int(str(count)), (None if oldest is None else float(str(oldest)))
 
     def release(
         self, alert_id: int, channels: tuple[str, ...], now: float, message_file: str
