@@ -65,6 +65,12 @@ def message_file_name(alert: StoredAlert) -> str:
     return f"{moment:%Y%m%dT%H%M%SZ}-{alert.id:06d}-{alert.kind}.eml"
 
 
+def write_message(path: Path, message: EmailMessage) -> None:
+    """A message as an RFC 5322 ``.eml`` file (CRLF line ends), written atomically."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    atomic_write(path, message.as_bytes(policy=SMTP))
+
+
 def daemon_trouble(event: str, message: str, **details: object) -> NewAlert:
     """An outbox alert about the daemon itself (observer restarted, inbox gone, fault)."""
     when = timestamp()
@@ -316,8 +322,7 @@ class AlertSender:
         assert self._outbox is not None
         message = self.compose(alert)
         name = message_file_name(alert)
-        self.outbox_dir.mkdir(parents=True, exist_ok=True)
-        atomic_write(self.outbox_dir / name, message.as_bytes(policy=SMTP))
+        write_message(self.outbox_dir / name, message)
         self._outbox.release(alert.id, self._channels(), self._clock(), name)
         log.info(
             "alert_written",
@@ -496,9 +501,7 @@ def emergency_alert(state_dir: Path, settings: AlertSettings, alert: NewAlert) -
         recipients=settings.recipients(alert.kind, None, None),
     )
     try:
-        folder = state_dir / OUTBOX_FOLDER
-        folder.mkdir(parents=True, exist_ok=True)
-        atomic_write(folder / message_file_name(stored), message.as_bytes(policy=SMTP))
+        write_message(state_dir / OUTBOX_FOLDER / message_file_name(stored), message)
     except OSError as error:
         log.error("emergency_alert_not_written", error=repr(error))
     if settings.email.host:
@@ -554,10 +557,8 @@ def send_test_message(settings: AlertSettings, state_dir: Path) -> list[str]:
         )
         done.append(f"posted a test alert to the webhook {settings.webhook.url}")
     if not done:
-        folder = state_dir / OUTBOX_FOLDER
-        folder.mkdir(parents=True, exist_ok=True)
-        path = folder / message_file_name(stored).replace("-000000-", "-")
-        atomic_write(path, message.as_bytes(policy=SMTP))
+        path = state_dir / OUTBOX_FOLDER / message_file_name(stored).replace("-000000-", "-")
+        write_message(path, message)
         done.append(
             "no SMTP server is configured (alerts.email.host), so alerts are written as .eml "
             f"files only; a test message was written to {path}"
