@@ -1,5 +1,5 @@
 import sys
 
-from daemon.cli import main
+from calwarden.daemon.cli.main import main
 
 sys.exit(main())

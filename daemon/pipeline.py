@@ -12,13 +12,13 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from daemon.config import AppConfig
-from daemon.reader import MAX_FILE_BYTES, RawTable, read_native
-from daemon.verdict_json import verdict_to_json
-from rules.errors import InputError
-from rules.evaluate import evaluate
-from rules.model import Run
-from rules.verdict import Status, Verdict
+from calwarden.daemon.outputs.verdict_json import verdict_to_json
+from calwarden.daemon.parsing.reader import MAX_FILE_BYTES, RawTable, read_native
+from calwarden.daemon.settings.config import AppConfig
+from calwarden.rules.errors import InputError
+from calwarden.rules.evaluate import evaluate
+from calwarden.rules.model import Run
+from calwarden.rules.verdict import Status, Verdict
 
 
 @dataclass(frozen=True, slots=True)
@@ -87,7 +87,9 @@ def judge_file(
         if config.format is None:
             parsed = read_native(path, data=data)
         else:
-            from daemon.layout import read_export  # only configurations with a layout need it
+            from calwarden.daemon.parsing.exports import (
+                read_export,  # only configurations with a layout need it
+            )
 
             parsed, _ = read_export(path, config.format, data=data)
     except InputError as error:

@@ -34,7 +34,7 @@ from collections.abc import Callable, Collection, Iterator, Sequence
 from dataclasses import dataclass
 from enum import StrEnum
 
-from rules.verdict import Severity
+from calwarden.rules.verdict import Severity
 
 # --- points, limits, series ---------------------------------------------------------------
 

@@ -19,9 +19,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from rules.calibration import Model
-from rules.model import Kind, Run
-from rules.verdict import Severity, Verdict
+from calwarden.rules.calibration import Model
+from calwarden.rules.model import Kind, Run
+from calwarden.rules.verdict import Severity, Verdict
 
 RECOVERY_UNIT = "%"
 _RECOVERY_KINDS = (Kind.ICV, Kind.CCV, Kind.LCS)

@@ -13,8 +13,8 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from rules.calibration import Model, Weighting
-from rules.errors import ConfigError
+from calwarden.rules.calibration import Model, Weighting
+from calwarden.rules.errors import ConfigError
 
 Range = tuple[float, float]
 

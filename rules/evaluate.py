@@ -11,8 +11,8 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, replace
 from statistics import fmean
 
-from rules.acceptance.samples import suggested_dilution
-from rules.calibration import (
+from calwarden.rules.acceptance.samples import suggested_dilution
+from calwarden.rules.calibration import (
     PARAMETERS,
     Fit,
     Model,
@@ -22,11 +22,11 @@ from rules.calibration import (
     relative_standard_error,
     standard_addition,
 )
-from rules.criteria import AnalyteCriteria, Criteria
-from rules.errors import ConfigError
-from rules.model import Kind, Reading, Run
-from rules.registry import AnalyteContext, Rule, all_rules
-from rules.verdict import (
+from calwarden.rules.criteria import AnalyteCriteria, Criteria
+from calwarden.rules.errors import ConfigError
+from calwarden.rules.model import Kind, Reading, Run
+from calwarden.rules.registry import AnalyteContext, Rule, all_rules
+from calwarden.rules.verdict import (
     AdditionSeries,
     Calibration,
     Finding,

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from enum import StrEnum
 
-from rules.errors import InputError
+from calwarden.rules.errors import InputError
 
 
 class Kind(StrEnum):

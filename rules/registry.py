@@ -12,9 +12,9 @@ import inspect
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 
-from rules.criteria import AnalyteCriteria
-from rules.model import Kind, Reading
-from rules.verdict import AdditionSeries, Calibration, Finding, Result
+from calwarden.rules.criteria import AnalyteCriteria
+from calwarden.rules.model import Kind, Reading
+from calwarden.rules.verdict import AdditionSeries, Calibration, Finding, Result
 
 Check = Callable[["AnalyteContext"], Iterable[Finding]]
 
@@ -74,6 +74,6 @@ def rule(rule_id: str, summary: str) -> Callable[[Check], Check]:
 
 def all_rules() -> tuple[Rule, ...]:
     """Every registered rule, in registration order."""
-    import rules.acceptance  # noqa: F401  (registers the rules on first use)
+    import calwarden.rules.acceptance  # noqa: F401  (registers the rules on first use)
 
     return tuple(_REGISTRY.values())

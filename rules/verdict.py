@@ -5,8 +5,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from enum import StrEnum
 
-from rules.calibration import AdditionResult, Fit, MandelResult
-from rules.model import Kind, Reading
+from calwarden.rules.calibration import AdditionResult, Fit, MandelResult
+from calwarden.rules.model import Kind, Reading
 
 
 class Severity(StrEnum):

@@ -10,11 +10,11 @@ from pathlib import Path
 import pytest
 from mail_server import Recorder, free_port
 
-from daemon.alert_sender import OUTBOX_FOLDER, AlertSender
-from daemon.alert_settings import AlertSettings
-from daemon.cli import main
-from daemon.ledger import LEDGER_NAME, Ledger
-from daemon.outbox import Outbox
+from calwarden.daemon.alerts.sender import OUTBOX_FOLDER, AlertSender
+from calwarden.daemon.alerts.settings import AlertSettings
+from calwarden.daemon.cli.main import main
+from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
+from calwarden.daemon.stores.outbox import Outbox
 
 ANALYST = "analyst@brindlewick.example"
 

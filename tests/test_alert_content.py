@@ -19,7 +19,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from daemon.alert_content import (
+from calwarden.daemon.alerts.content import (
     HEADER_PIECE_LIMIT,
     SUBJECT_LIMIT,
     daemon_alert,
@@ -31,9 +31,9 @@ from daemon.alert_content import (
     text_body,
     webhook_payload,
 )
-from daemon.config import AppConfig
-from daemon.pipeline import judge_file
-from daemon.verdict_json import CAUTION
+from calwarden.daemon.outputs.verdict_json import CAUTION
+from calwarden.daemon.pipeline import judge_file
+from calwarden.daemon.settings.config import AppConfig
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 SENDER = "calwarden@brindlewick.example"
@@ -505,7 +505,7 @@ def test_webhook_payload_carries_id_and_time() -> None:
 
 def test_a_verdict_too_large_to_attach_is_named_instead() -> None:
     """A verdict over the attachment limit is left out and the text says where it is."""
-    from daemon.alert_content import ATTACHMENT_LIMIT_BYTES
+    from calwarden.daemon.alerts.content import ATTACHMENT_LIMIT_BYTES
 
     message = email_message(
         _fail_alert(),

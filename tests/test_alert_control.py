@@ -19,9 +19,9 @@ from typing import Any
 import pytest
 from waiting import wait_for
 
-from daemon.alert_sender import OUTBOX_FOLDER
-from daemon.config import build_config, plan_watch
-from daemon.watcher import Watcher
+from calwarden.daemon.alerts.sender import OUTBOX_FOLDER
+from calwarden.daemon.intake.watcher import Watcher
+from calwarden.daemon.settings.config import build_config, plan_watch
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 PASSING = FIXTURES / "bwl-metals-pass.csv"

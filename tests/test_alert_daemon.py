@@ -39,14 +39,14 @@ from aiosmtpd.smtp import Envelope, Session
 from mail_server import free_port
 from waiting import wait_for
 
-import daemon.watcher as watcher_module
-from daemon.alert_sender import AlertSender
-from daemon.alert_settings import AlertSettings
-from daemon.config import WatchPlan, build_config, plan_watch
-from daemon.control_log import ControlSettings
-from daemon.intake import Intake, Outcome
-from daemon.ledger import LEDGER_NAME, Ledger, NewEvaluation
-from daemon.watcher import Watcher
+import calwarden.daemon.intake.watcher as watcher_module
+from calwarden.daemon.alerts.sender import AlertSender
+from calwarden.daemon.alerts.settings import AlertSettings
+from calwarden.daemon.control_log.log import ControlSettings
+from calwarden.daemon.intake.accept import Intake, Outcome
+from calwarden.daemon.intake.watcher import Watcher
+from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
+from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, NewEvaluation
 
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
@@ -301,7 +301,7 @@ def spawn(tmp_path: Path) -> Iterator[Callable[..., subprocess.Popen[bytes]]]:
             (tmp_path / f"watch-{number}.stderr").open("wb") as stderr,
         ):
             process = subprocess.Popen(
-                [sys.executable, "-m", "daemon", "watch", *map(str, args)],
+                [sys.executable, "-m", "calwarden.daemon", "watch", *map(str, args)],
                 cwd=tmp_path,
                 env=_environment(),
                 stdin=subprocess.DEVNULL,

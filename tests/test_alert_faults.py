@@ -12,11 +12,16 @@ from mail_server import Recorder
 from structlog.testing import capture_logs
 from waiting import wait_for
 
-from daemon.alert_sender import OUTBOX_FOLDER, AlertSender, daemon_trouble, emergency_alert
-from daemon.alert_settings import AlertSettings
-from daemon.config import build_config, plan_watch
-from daemon.ledger import LEDGER_NAME, Ledger
-from daemon.watcher import Watcher
+from calwarden.daemon.alerts.sender import (
+    OUTBOX_FOLDER,
+    AlertSender,
+    daemon_trouble,
+    emergency_alert,
+)
+from calwarden.daemon.alerts.settings import AlertSettings
+from calwarden.daemon.intake.watcher import Watcher
+from calwarden.daemon.settings.config import build_config, plan_watch
+from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 ANALYST = "analyst@brindlewick.example"

@@ -8,10 +8,10 @@ from typing import Any
 
 import pytest
 
-from daemon.alert_settings import ALERT_KINDS, AlertSettings, EmailSettings
-from daemon.cli import main
-from daemon.config import build_config, load_config, plan_watch
-from rules.errors import ConfigError
+from calwarden.daemon.alerts.settings import ALERT_KINDS, AlertSettings, EmailSettings
+from calwarden.daemon.cli.main import main
+from calwarden.daemon.settings.config import build_config, load_config, plan_watch
+from calwarden.rules.errors import ConfigError
 
 QC_LEAD = "qc-lead@brindlewick.example"
 METALS_LEAD = "metals-lead@brindlewick.example"

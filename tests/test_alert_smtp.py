@@ -24,12 +24,12 @@ from aiosmtpd.smtp import SMTP, AuthResult, Envelope, LoginPassword, Session
 from mail_server import Recorder, free_port
 from waiting import wait_for
 
-from daemon.alert_sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
-from daemon.config import WatchPlan, build_config, plan_watch
-from daemon.ledger import LEDGER_NAME
-from daemon.outbox import Outbox, OutboxCounts
-from daemon.status import status_report
-from daemon.watcher import Watcher
+from calwarden.daemon.alerts.sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
+from calwarden.daemon.cli.status import status_report
+from calwarden.daemon.intake.watcher import Watcher
+from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
+from calwarden.daemon.stores.ledger import LEDGER_NAME
+from calwarden.daemon.stores.outbox import Outbox, OutboxCounts
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 FAILING = (FIXTURES / "bwl-metals-fail.csv").read_bytes()

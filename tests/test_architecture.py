@@ -1,19 +1,23 @@
-"""The core stays pure: rules/ never imports the shell, nor anything that does I/O."""
+"""The house: rules/ imports no shell and no I/O; the packaging matches the folders."""
 
 from __future__ import annotations
 
 import ast
+import tomllib
 from pathlib import Path
 
 import pytest
 
-RULES = Path(__file__).resolve().parent.parent / "rules"
-#: Modules whose use would give the core files, network, clock, processes or logging.
+PROJECT = Path(__file__).resolve().parent.parent
+RULES = PROJECT / "rules"
+#: Top-level modules whose use would give the core files, network, clock, processes or logging.
 FORBIDDEN = {
     "daemon", "os", "io", "pathlib", "shutil", "socket", "subprocess", "logging", "structlog",
     "time", "tempfile", "sqlite3", "urllib", "http", "smtplib", "threading", "watchdog", "yaml",
-    "glob", "sys",
+    "glob", "sys", "asyncio", "psycopg",
 }  # fmt: skip
+#: Dotted prefixes the core may never import, however they are spelt.
+FORBIDDEN_PREFIXES = ("calwarden.daemon",)
 FORBIDDEN_CALLS = {"open", "print", "input"}
 
 
@@ -21,21 +25,57 @@ def _core_files() -> list[Path]:
     return sorted(RULES.rglob("*.py"))
 
 
-def _imported(tree: ast.AST) -> set[str]:
-    names = set()
+def _package_of(path: Path) -> str:
+    """The dotted package a core file lives in, as installed (calwarden.rules...)."""
+    parts = path.relative_to(PROJECT).with_suffix("").parts
+    package = parts if path.name == "__init__.py" else parts[:-1]
+    if path.name == "__init__.py":
+        package = package[:-1]
+    return ".".join(("calwarden", *package))
+
+
+def _absolute(path: Path, node: ast.ImportFrom) -> str:
+    """The absolute module name of a `from ... import`, relative imports resolved."""
+    if node.level == 0:
+        return node.module or ""
+    base = _package_of(path).split(".")
+    base = base[: len(base) - (node.level - 1)]
+    return ".".join([*base, *([node.module] if node.module else [])])
+
+
+def _imported(path: Path, tree: ast.AST) -> set[str]:
+    """Every dotted module name a file imports, and every dotted prefix of it."""
+    names: set[str] = set()
     for node in ast.walk(tree):
         if isinstance(node, ast.Import):
-            names.update(alias.name.split(".")[0] for alias in node.names)
-        elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
-            names.add(node.module.split(".")[0])
+            modules = [alias.name for alias in node.names]
+        elif isinstance(node, ast.ImportFrom):
+            module = _absolute(path, node)
+            modules = [module, *(f"{module}.{alias.name}" for alias in node.names)]
+        else:
+            continue
+        for module in modules:
+            parts = module.split(".")
+            names.update(".".join(parts[: i + 1]) for i in range(len(parts)))
     return names
 
 
 @pytest.mark.parametrize("path", _core_files(), ids=lambda p: str(p.relative_to(RULES)))
 def test_core_module_imports_no_shell_or_io(path: Path) -> None:
-    """A rules/ module imports neither daemon nor an I/O, clock or logging module."""
+    """A rules/ module imports neither the shell nor an I/O, clock or logging module."""
     tree = ast.parse(path.read_text(encoding="utf-8"))
-    assert not (_imported(tree) & FORBIDDEN)
+    imported = _imported(path, tree)
+    assert not (imported & FORBIDDEN)
+    assert not [name for name in imported if name.startswith(FORBIDDEN_PREFIXES)]
+
+
+def test_relative_imports_are_resolved() -> None:
+    """The import check sees through relative imports, so `from ..daemon` cannot slip by."""
+    path = RULES / "acceptance" / "blanks.py"
+    tree = ast.parse("from ...daemon.stores import ledger\nfrom . import common\n")
+    imported = _imported(path, tree)
+    assert "calwarden.daemon.stores.ledger" in imported
+    assert "calwarden.rules.acceptance.common" in imported
 
 
 @pytest.mark.parametrize("path", _core_files(), ids=lambda p: str(p.relative_to(RULES)))
@@ -48,3 +88,16 @@ def test_core_module_calls_no_io_builtin(path: Path) -> None:
         if isinstance(node, ast.Call) and isinstance(node.func, ast.Name)
     }
     assert not (called & FORBIDDEN_CALLS)
+
+
+def test_every_folder_is_an_installed_package() -> None:
+    """pyproject.toml lists exactly the package folders under daemon/ and rules/."""
+    listed = set(
+        tomllib.loads((PROJECT / "pyproject.toml").read_text())["tool"]["setuptools"]["packages"]
+    )
+    folders = {
+        ".".join(("calwarden", *init.parent.relative_to(PROJECT).parts))
+        for top in ("daemon", "rules")
+        for init in (PROJECT / top).rglob("__init__.py")
+    }
+    assert listed == folders

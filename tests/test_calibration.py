@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 from scipy.special import stdtrit
 from statsmodels.regression.linear_model import WLS
 
-from rules.calibration import (
+from calwarden.rules.calibration import (
     Fit,
     Model,
     Weighting,
@@ -629,7 +629,7 @@ def test_f_quantile_matches_scipy(dof: int, alpha: float) -> None:
     """The closed-form F(1, ν) quantile Mandel's test uses equals scipy.special.fdtri to 1e-10."""
     from scipy.special import fdtri
 
-    from rules.calibration import f_quantile_one_numerator
+    from calwarden.rules.calibration import f_quantile_one_numerator
 
     expected = float(fdtri(1.0, float(dof), 1.0 - alpha))
     assert f_quantile_one_numerator(1.0 - alpha, dof) == pytest.approx(expected, rel=1e-10)

@@ -1,4 +1,4 @@
-"""daemon/charts.py: control charts and calibration pictures, as PNG bytes."""
+"""The drawing module: control charts and calibration pictures, as PNG bytes."""
 
 from __future__ import annotations
 
@@ -18,7 +18,7 @@ import pytest
 from matplotlib.figure import Figure
 from matplotlib.text import Text
 
-from daemon.charts import (
+from calwarden.daemon.outputs.drawing import (
     ChartPoint,
     ControlChart,
     calibration_figure,
@@ -26,8 +26,8 @@ from daemon.charts import (
     control_chart_figure,
     control_chart_png,
 )
-from daemon.config import AppConfig, build_config
-from daemon.pipeline import judge_file
+from calwarden.daemon.pipeline import judge_file
+from calwarden.daemon.settings.config import AppConfig, build_config
 
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
@@ -159,7 +159,8 @@ def test_rendering_needs_no_display_and_no_pyplot() -> None:
     """Both pictures render with no display, a display backend configured, and no pyplot."""
     script = (
         "import sys\n"
-        "from daemon.charts import ChartPoint, ControlChart, calibration_png, control_chart_png\n"
+        "from calwarden.daemon.outputs.drawing import (\n"
+        "    ChartPoint, ControlChart, calibration_png, control_chart_png)\n"
         "chart = ControlChart('t', 'recovery (%)', (ChartPoint(None, 100.0, 'r'),))\n"
         "calibration = {'coefficients': [0.0, 2.0], 'range': [1.0, 5.0], 'standards': []}\n"
         "pngs = control_chart_png(chart), calibration_png('Cu', calibration)\n"
@@ -182,8 +183,8 @@ def test_rendering_needs_no_display_and_no_pyplot() -> None:
 
 
 def test_importing_charts_does_not_import_matplotlib() -> None:
-    """daemon.charts imports matplotlib only when it draws."""
-    script = "import sys, daemon.charts; print('matplotlib' in sys.modules)"
+    """The drawing module imports matplotlib only when it draws."""
+    script = "import sys, calwarden.daemon.outputs.drawing; print('matplotlib' in sys.modules)"
     done = subprocess.run(
         [sys.executable, "-c", script], cwd=PROJECT, capture_output=True, text=True, check=True
     )

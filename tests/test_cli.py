@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from daemon.cli import main
+from calwarden.daemon.cli.main import main
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 PASSING = FIXTURES / "bwl-metals-pass.csv"
@@ -115,7 +115,7 @@ def test_installed_command_runs_without_traceback(tmp_path: Path) -> None:
     garbage = tmp_path / "garbage.csv"
     garbage.write_bytes(bytes(range(256)) * 8)
     result = subprocess.run(
-        [sys.executable, "-m", "daemon", "check", str(garbage)],
+        [sys.executable, "-m", "calwarden.daemon", "check", str(garbage)],
         capture_output=True,
         text=True,
         check=False,

@@ -6,10 +6,10 @@ from pathlib import Path
 
 import pytest
 
-from daemon.config import load_config, parse_yaml
-from rules.criteria import AnalyteCriteria, Criteria, build_criteria
-from rules.errors import ConfigError
-from rules.evaluate import active_rules
+from calwarden.daemon.settings.config import load_config, parse_yaml
+from calwarden.rules.criteria import AnalyteCriteria, Criteria, build_criteria
+from calwarden.rules.errors import ConfigError
+from calwarden.rules.evaluate import active_rules
 
 CONFIG = Path(__file__).resolve().parent.parent / "config"
 

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 
-from rules.control import (
+from calwarden.rules.control import (
     BASELINE_SIZE,
     EWMA_LAMBDA,
     EWMA_WIDTH,
@@ -28,7 +28,7 @@ from rules.control import (
     ewma_chart,
     ewma_violations,
 )
-from rules.verdict import Severity
+from calwarden.rules.verdict import Severity
 
 UNIT = ControlLimits.fixed(centre=0.0, sd=1.0)
 

@@ -24,15 +24,15 @@ import pytest
 from structlog.testing import capture_logs
 from waiting import wait_for
 
-from daemon.cli import main
-from daemon.config import AppConfig, build_config, plan_watch
-from daemon.control_log import EXPORT_COLUMNS
-from daemon.intake import Intake, Outcome
-from daemon.ledger import LEDGER_NAME, Ledger, SeriesKey
-from daemon.pipeline import judge_file
-from daemon.watcher import Watcher
-from rules.control_points import ControlObservation, control_observations
-from rules.errors import ConfigError
+from calwarden.daemon.cli.main import main
+from calwarden.daemon.control_log.log import EXPORT_COLUMNS
+from calwarden.daemon.intake.accept import Intake, Outcome
+from calwarden.daemon.intake.watcher import Watcher
+from calwarden.daemon.pipeline import judge_file
+from calwarden.daemon.settings.config import AppConfig, build_config, plan_watch
+from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, SeriesKey
+from calwarden.rules.control_points import ControlObservation, control_observations
+from calwarden.rules.errors import ConfigError
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 METALS_FILE = FIXTURES / "demo" / "bwl-demo-1130-metals.csv"

@@ -23,7 +23,7 @@ from typing import Any
 
 import pytest
 
-from daemon.demo import run_demo
+from calwarden.daemon.cli.demo import run_demo
 
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
@@ -67,7 +67,7 @@ def _environment() -> dict[str, str]:
 def calwarden(*args: object, cwd: Path, timeout: float = 60.0) -> subprocess.CompletedProcess[str]:
     """Run one calwarden command to its end."""
     return subprocess.run(
-        [sys.executable, "-m", "daemon", *map(str, args)],
+        [sys.executable, "-m", "calwarden.daemon", *map(str, args)],
         cwd=cwd,
         env=_environment(),
         capture_output=True,
@@ -135,7 +135,7 @@ def spawn(tmp_path: Path) -> Iterator[Spawn]:
         stderr_path = tmp_path / f"watch-{number}.stderr"
         with stdout_path.open("wb") as stdout, stderr_path.open("wb") as stderr:
             process = subprocess.Popen(
-                [sys.executable, "-m", "daemon", "watch", *map(str, args)],
+                [sys.executable, "-m", "calwarden.daemon", "watch", *map(str, args)],
                 cwd=tmp_path,
                 env=_environment(),
                 stdin=subprocess.DEVNULL,

@@ -11,8 +11,8 @@ from typing import Any
 
 import pytest
 
-from daemon.config import AppConfig
-from daemon.pipeline import judge_file
+from calwarden.daemon.pipeline import judge_file
+from calwarden.daemon.settings.config import AppConfig
 
 PROJECT = Path(__file__).resolve().parent.parent
 DEMO = PROJECT / "fixtures" / "demo"

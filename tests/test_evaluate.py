@@ -12,10 +12,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from rules.criteria import build_criteria
-from rules.evaluate import evaluate
-from rules.model import Kind, Reading, Run
-from rules.verdict import Severity, Status
+from calwarden.rules.criteria import build_criteria
+from calwarden.rules.evaluate import evaluate
+from calwarden.rules.model import Kind, Reading, Run
+from calwarden.rules.verdict import Severity, Status
 
 PROJECT = Path(__file__).resolve().parent.parent
 LEVELS = [1.0, 2.0, 5.0, 10.0, 20.0, 50.0]

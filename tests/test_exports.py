@@ -10,8 +10,8 @@ from pathlib import Path
 import pytest
 from test_golden import reduce
 
-from daemon.config import load_config
-from daemon.pipeline import judge_file
+from calwarden.daemon.pipeline import judge_file
+from calwarden.daemon.settings.config import load_config
 
 PROJECT = Path(__file__).resolve().parent.parent
 #: export → (its configuration, the native fixture it mirrors, the native fixture's configuration)

@@ -13,8 +13,8 @@ from typing import Any
 
 import pytest
 
-from daemon.config import load_config
-from daemon.pipeline import judge_file
+from calwarden.daemon.pipeline import judge_file
+from calwarden.daemon.settings.config import load_config
 
 PROJECT = Path(__file__).resolve().parent.parent
 GOLDEN = Path(__file__).parent / "golden"

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from daemon.cli import main
+from calwarden.daemon.cli.main import main
 
 PROJECT = Path(__file__).resolve().parent.parent
 EXPORT = PROJECT / "fixtures" / "exports" / "bwl-icpms-metals-pass.txt"

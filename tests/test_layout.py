@@ -13,11 +13,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from daemon.formats import ExportFormat
-from daemon.layout import Detected, export_table, read_export
-from daemon.reader import RawTable, normalise, read_native
-from rules.errors import InputError
-from rules.model import Kind, Reading
+from calwarden.daemon.parsing.exports import Detected, export_table, read_export
+from calwarden.daemon.parsing.reader import RawTable, normalise, read_native
+from calwarden.daemon.settings.formats import ExportFormat
+from calwarden.rules.errors import InputError
+from calwarden.rules.model import Kind, Reading
 
 # A small long-layout run in calwarden's own words, reused where only one aspect differs.
 NATIVE = (

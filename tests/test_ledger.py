@@ -15,11 +15,11 @@ from typing import Any
 import pytest
 from waiting import wait_for
 
-from daemon.config import AppConfig, Inbox, WatchPlan, plan_watch
-from daemon.intake import Intake, Outcome
-from daemon.ledger import LEDGER_NAME, Ledger
-from daemon.status import status_report
-from daemon.watcher import Watcher
+from calwarden.daemon.cli.status import status_report
+from calwarden.daemon.intake.accept import Intake, Outcome
+from calwarden.daemon.intake.watcher import Watcher
+from calwarden.daemon.settings.config import AppConfig, Inbox, WatchPlan, plan_watch
+from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 PASSING = (FIXTURES / "bwl-metals-pass.csv").read_bytes()
@@ -220,7 +220,7 @@ def test_file_rewritten_with_another_files_content_has_a_current_verdict(
 
 def test_only_the_newest_runs_keep_pending_pictures(tmp_path: Path) -> None:
     """After a backlog, all but the newest N judged runs are marked as not to be drawn."""
-    from daemon.ledger import NewEvaluation
+    from calwarden.daemon.stores.ledger import NewEvaluation
 
     ledger = Ledger(tmp_path / LEDGER_NAME)
     try:

@@ -14,7 +14,7 @@ from typing import Any
 
 import pytest
 
-from rules.calibration import Fit, Model, fit_calibration
+from calwarden.rules.calibration import Fit, Model, fit_calibration
 
 REFERENCE = Path(__file__).parent / "reference" / "nist_strd"
 CERTIFIED: dict[str, Any] = json.loads((REFERENCE / "certified.json").read_text("utf-8"))

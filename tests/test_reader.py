@@ -11,7 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from daemon.reader import (
+from calwarden.daemon.parsing.reader import (
     MAX_FILE_BYTES,
     NATIVE_FIELDS,
     REQUIRED_FIELDS,
@@ -21,8 +21,8 @@ from daemon.reader import (
     normalise,
     read_native,
 )
-from rules.errors import ConfigError, InputError
-from rules.model import Kind, Reading, Run
+from calwarden.rules.errors import ConfigError, InputError
+from calwarden.rules.model import Kind, Reading, Run
 
 # A good run, written with its columns out of the native order, an extra column,
 # mixed-case header names and kinds, and empty optional cells.

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from daemon.config import load_config
-from daemon.pipeline import judge_file
-from daemon.report import render
+from calwarden.daemon.outputs.report import render
+from calwarden.daemon.pipeline import judge_file
+from calwarden.daemon.settings.config import load_config
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 

@@ -8,10 +8,10 @@ from typing import Any
 import pytest
 import yaml
 
-from daemon.reader import decode_table, normalise
-from rules.criteria import build_criteria
-from rules.evaluate import evaluate
-from rules.registry import all_rules
+from calwarden.daemon.parsing.reader import decode_table, normalise
+from calwarden.rules.criteria import build_criteria
+from calwarden.rules.evaluate import evaluate
+from calwarden.rules.registry import all_rules
 
 CASES = Path(__file__).parent / "cases"
 BASE = (CASES / "_base.csv").read_text(encoding="utf-8")

@@ -19,10 +19,10 @@ import pytest
 from waiting import wait_for
 from watchdog.observers.polling import PollingObserver
 
-from daemon.config import WatchPlan, build_config, plan_watch
-from daemon.intake import Outcome
-from daemon.ledger import LEDGER_NAME, Ledger
-from daemon.watcher import StartError, Watcher
+from calwarden.daemon.intake.accept import Outcome
+from calwarden.daemon.intake.watcher import StartError, Watcher
+from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
+from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 PASSING = (FIXTURES / "bwl-metals-pass.csv").read_bytes()

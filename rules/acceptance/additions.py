@@ -4,9 +4,9 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from rules.acceptance.common import number
-from rules.registry import AnalyteContext, rule
-from rules.verdict import Finding, Flag, Severity
+from calwarden.rules.acceptance.common import number
+from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.verdict import Finding, Flag, Severity
 
 
 @rule("addition.fit", "Each standard-addition series has enough points and a straight response")

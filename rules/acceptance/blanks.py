@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from rules.acceptance.common import number, reading_finding, result_of
-from rules.model import Kind
-from rules.registry import AnalyteContext, rule
-from rules.verdict import Finding, Flag, Severity
+from calwarden.rules.acceptance.common import number, reading_finding, result_of
+from calwarden.rules.model import Kind
+from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.verdict import Finding, Flag, Severity
 
 
 @rule("blank.contamination", "Calibration and method blanks stay below the lowest standard")

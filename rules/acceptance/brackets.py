@@ -6,10 +6,10 @@ from bisect import bisect_left
 from collections.abc import Iterator
 from dataclasses import dataclass
 
-from rules.acceptance.common import check_passes
-from rules.model import CHECK_KINDS, FIELD_KINDS, Reading
-from rules.registry import AnalyteContext, rule
-from rules.verdict import Finding, Flag, Severity
+from calwarden.rules.acceptance.common import check_passes
+from calwarden.rules.model import CHECK_KINDS, FIELD_KINDS, Reading
+from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.verdict import Finding, Flag, Severity
 
 
 @dataclass(frozen=True, slots=True)

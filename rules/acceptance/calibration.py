@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from rules.acceptance.common import number
-from rules.calibration import Model
-from rules.model import Kind
-from rules.registry import AnalyteContext, rule
-from rules.verdict import Finding, Flag, Severity
+from calwarden.rules.acceptance.common import number
+from calwarden.rules.calibration import Model
+from calwarden.rules.model import Kind
+from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.verdict import Finding, Flag, Severity
 
 _NO_CURVE_NEEDED = frozenset({Kind.BLANK, Kind.CAL, Kind.ADDITION})
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from rules.acceptance.common import (
+from calwarden.rules.acceptance.common import (
     check_limits,
     check_recovery,
     number,
@@ -12,9 +12,9 @@ from rules.acceptance.common import (
     recovery_pct,
     result_of,
 )
-from rules.model import Kind
-from rules.registry import AnalyteContext, rule
-from rules.verdict import Finding
+from calwarden.rules.model import Kind
+from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.verdict import Finding
 
 
 @rule("check.recovery", "ICV and CCV concentrations recover within limits")

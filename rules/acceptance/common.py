@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from rules.criteria import Range
-from rules.model import REPORTABLE_KINDS, Kind, Reading
-from rules.registry import AnalyteContext
-from rules.verdict import Calibration, Finding, Flag, Limit, Result, Severity
+from calwarden.rules.criteria import Range
+from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
+from calwarden.rules.registry import AnalyteContext
+from calwarden.rules.verdict import Calibration, Finding, Flag, Limit, Result, Severity
 
 
 def number(value: float) -> str:

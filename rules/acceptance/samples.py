@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from rules.acceptance.common import (
+from calwarden.rules.acceptance.common import (
     number,
     off_curve_results,
     quantitated_field_results,
@@ -16,9 +16,9 @@ from rules.acceptance.common import (
     span,
     within,
 )
-from rules.model import REPORTABLE_KINDS, Kind, Reading
-from rules.registry import AnalyteContext, rule
-from rules.verdict import Finding, Flag, Result, Severity
+from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
+from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.verdict import Finding, Flag, Result, Severity
 
 #: Kinds a duplicate or spike may be made from.
 _PARENT_KINDS = frozenset({Kind.SAMPLE, Kind.LCS, Kind.MB})

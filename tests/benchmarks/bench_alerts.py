@@ -31,9 +31,9 @@ from aiosmtpd.smtp import SMTP, Envelope, Session
 PROJECT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(PROJECT))
 
-from daemon.config import build_config, plan_watch  # noqa: E402
-from daemon.intake import Outcome  # noqa: E402
-from daemon.watcher import Watcher  # noqa: E402
+from calwarden.daemon.intake.accept import Outcome  # noqa: E402
+from calwarden.daemon.intake.watcher import Watcher  # noqa: E402
+from calwarden.daemon.settings.config import build_config, plan_watch  # noqa: E402
 
 FAILING = (PROJECT / "fixtures" / "bwl-metals-fail.csv").read_text(encoding="utf-8")
 FAILING_RUN = "BWL-ICPMS-2-20261124-A"

@@ -59,7 +59,7 @@ def main() -> int:
     parser.add_argument("--repeat", type=int, default=5)
     args = parser.parse_args()
     print(f"machine speed: fixed workload {_machine_speed():.3f} s (lower is faster)")
-    command = [sys.executable, "-m", "daemon", "check"]
+    command = [sys.executable, "-m", "calwarden.daemon", "check"]
     with tempfile.TemporaryDirectory() as folder:
         large = Path(folder) / "large.csv"
         write_large(large)

@@ -52,10 +52,10 @@ from typing import Any
 PROJECT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(PROJECT))  # measure this checkout, whatever is installed
 
-from daemon.config import WatchPlan, load_config, plan_watch  # noqa: E402
-from daemon.intake import Outcome  # noqa: E402
-from daemon.logs import LOG_NAME, configure_logging  # noqa: E402
-from daemon.watcher import Watcher  # noqa: E402
+from calwarden.daemon.intake.accept import Outcome  # noqa: E402
+from calwarden.daemon.intake.watcher import Watcher  # noqa: E402
+from calwarden.daemon.logs import LOG_NAME, configure_logging  # noqa: E402
+from calwarden.daemon.settings.config import WatchPlan, load_config, plan_watch  # noqa: E402
 
 TYPICAL = sorted((PROJECT / "fixtures" / "demo").glob("*metals*.csv"))
 WARMUP_DROPS = 3  # the first judgements of a process pay for imports and caches
@@ -363,7 +363,7 @@ class DaemonProcess:
         self.out = out
         self.process = subprocess.Popen(
             [
-                *(sys.executable, "-m", "daemon", "watch", str(inbox)),
+                *(sys.executable, "-m", "calwarden.daemon", "watch", str(inbox)),
                 *("--out", str(out), *setup.arguments()),
             ],
             cwd=PROJECT,

@@ -27,9 +27,16 @@ from typing import Any, Literal
 
 from pydantic import Field, field_validator
 
-from daemon.ledger import Ledger, NewLimits, NewPoint, SeriesKey, StoredLimits, StoredPoint
-from daemon.section import Section
-from rules.control import (
+from calwarden.daemon.settings.section import Section
+from calwarden.daemon.stores.ledger import (
+    Ledger,
+    NewLimits,
+    NewPoint,
+    SeriesKey,
+    StoredLimits,
+    StoredPoint,
+)
+from calwarden.rules.control import (
     BASELINE_SIZE,
     DEFAULT_RULES,
     EWMA_LAMBDA,
@@ -43,8 +50,8 @@ from rules.control import (
     evaluate_group,
     ewma_violations,
 )
-from rules.control_points import ControlObservation
-from rules.verdict import Severity
+from calwarden.rules.control_points import ControlObservation
+from calwarden.rules.verdict import Severity
 
 SeriesKind = Literal["ICV", "CCV", "LCS", "ISTD", "slope"]
 _HISTORY = 40  # points of history a rule can need: 10-x across two levels needs at most 20

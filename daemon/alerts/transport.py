@@ -21,7 +21,7 @@ from collections.abc import Sequence
 from email.message import EmailMessage
 from typing import Any
 
-from daemon.alert_settings import EmailSettings, WebhookSettings
+from calwarden.daemon.alerts.settings import EmailSettings, WebhookSettings
 
 
 class DeliveryError(Exception):

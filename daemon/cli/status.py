@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from daemon.alert_sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
-from daemon.ledger import LEDGER_NAME, Evaluation, LedgerError
-from daemon.lock import is_locked, lock_owner
-from daemon.outbox import Outbox
+from calwarden.daemon.alerts.sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
+from calwarden.daemon.intake.lock import is_locked, lock_owner
+from calwarden.daemon.stores.ledger import LEDGER_NAME, Evaluation, LedgerError
+from calwarden.daemon.stores.outbox import Outbox
 
 
 def _line(evaluation: Evaluation) -> str:

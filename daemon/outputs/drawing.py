@@ -39,7 +39,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import TYPE_CHECKING, Any, TypeGuard
 
-from rules.control import BASELINE_SIZE
+from calwarden.rules.control import BASELINE_SIZE
 
 #: The daemon draws in two threads (the worker's pictures, the alert sender's inline
 #: charts); matplotlib's caches (fonts, text layout) are not documented as thread-safe,
@@ -582,7 +582,7 @@ def calibration_figure(analyte: str, calibration: Mapping[str, Any]) -> Figure:
     import numpy as np
     from matplotlib.ticker import FuncFormatter, NullFormatter
 
-    from rules.criteria import AnalyteCriteria
+    from calwarden.rules.criteria import AnalyteCriteria
 
     guide = float(AnalyteCriteria.model_fields["back_calculation_pct"].default)
     standards = [s for s in calibration.get("standards") or () if _finite(s.get("nominal"))]

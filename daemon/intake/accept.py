@@ -32,12 +32,16 @@ from typing import Any
 
 import structlog
 
-from daemon.alert_content import file_alert, payload_bytes
-from daemon.alert_settings import AlertSettings
-from daemon.chart_files import calibration_picture_name
-from daemon.config import AppConfig, Inbox
-from daemon.control_log import Assessment, amend, assess
-from daemon.ledger import (
+from calwarden.daemon.alerts.content import file_alert, payload_bytes
+from calwarden.daemon.alerts.settings import AlertSettings
+from calwarden.daemon.control_log.log import Assessment, amend, assess
+from calwarden.daemon.outputs.files import output_files, write_files
+from calwarden.daemon.outputs.pictures import calibration_picture_name
+from calwarden.daemon.outputs.report import render
+from calwarden.daemon.outputs.verdict_json import calwarden_version
+from calwarden.daemon.pipeline import Judgement, error_document, judge_file
+from calwarden.daemon.settings.config import AppConfig, Inbox
+from calwarden.daemon.stores.ledger import (
     Evaluation,
     Ledger,
     NewAlert,
@@ -46,11 +50,7 @@ from daemon.ledger import (
     SeriesKey,
     timestamp,
 )
-from daemon.outputs import output_files, write_files
-from daemon.pipeline import Judgement, error_document, judge_file
-from daemon.report import render
-from daemon.verdict_json import calwarden_version
-from rules.control_points import control_observations
+from calwarden.rules.control_points import control_observations
 
 log = structlog.get_logger("calwarden")
 

@@ -13,8 +13,8 @@ from typing import Literal
 
 from pydantic import Field, field_validator, model_validator
 
-from daemon.section import Section
-from rules.model import Kind
+from calwarden.daemon.settings.section import Section
+from calwarden.rules.model import Kind
 
 #: Native fields a layout may fill (the columns of the native format).
 MAPPABLE_FIELDS = (

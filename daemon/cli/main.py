@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
-    from daemon.config import AppConfig
+    from calwarden.daemon.settings.config import AppConfig
 
 EXIT_PASS, EXIT_FAIL, EXIT_ERROR = 0, 1, 2
 EXIT_FAULT = (
@@ -163,12 +163,12 @@ def _check(args: argparse.Namespace) -> int:
     # One short-lived process building many small acyclic objects: the cycle collector
     # would only rescan them over and over (about a tenth of a large run's time).
     gc.disable()
-    from daemon.config import load_config
-    from daemon.outputs import write_outputs
-    from daemon.pipeline import judge_file
-    from daemon.report import render
-    from daemon.verdict_json import dump_verdict
-    from rules.errors import ConfigError
+    from calwarden.daemon.outputs.files import write_outputs
+    from calwarden.daemon.outputs.report import render
+    from calwarden.daemon.outputs.verdict_json import dump_verdict
+    from calwarden.daemon.pipeline import judge_file
+    from calwarden.daemon.settings.config import load_config
+    from calwarden.rules.errors import ConfigError
 
     try:
         config = load_config(args.config)
@@ -199,7 +199,7 @@ def _check(args: argparse.Namespace) -> int:
 
 
 def _check_failed(args: argparse.Namespace, message: str) -> int:
-    from daemon.pipeline import error_document
+    from calwarden.daemon.pipeline import error_document
 
     if args.json:
         print(json.dumps(error_document(args.file, message, None), indent=2))
@@ -210,8 +210,8 @@ def _check_failed(args: argparse.Namespace, message: str) -> int:
 
 def _load_config_or_say_why(path: Path | None) -> AppConfig | None:
     """The configuration, or ``None`` after printing why it is invalid."""
-    from daemon.config import load_config
-    from rules.errors import ConfigError
+    from calwarden.daemon.settings.config import load_config
+    from calwarden.rules.errors import ConfigError
 
     try:
         return load_config(path)
@@ -221,7 +221,7 @@ def _load_config_or_say_why(path: Path | None) -> AppConfig | None:
 
 
 def _inspect(args: argparse.Namespace) -> int:
-    from daemon.inspection import inspect_file, render_inspection
+    from calwarden.daemon.parsing.inspection import inspect_file, render_inspection
 
     config = _load_config_or_say_why(args.config)
     if config is None:
@@ -232,7 +232,7 @@ def _inspect(args: argparse.Namespace) -> int:
 
 
 def _config(args: argparse.Namespace) -> int:
-    from daemon.config import AppConfig
+    from calwarden.daemon.settings.config import AppConfig
 
     if args.config_command == "schema":
         schema = AppConfig.model_json_schema()
@@ -266,7 +266,7 @@ def _config(args: argparse.Namespace) -> int:
 
 
 def _rules(args: argparse.Namespace) -> int:
-    from rules.registry import all_rules
+    from calwarden.rules.registry import all_rules
 
     config = _load_config_or_say_why(args.config)
     if config is None:
@@ -295,10 +295,10 @@ def _watch(args: argparse.Namespace) -> int:
     import signal
     import threading
 
-    from daemon.config import plan_watch
-    from daemon.logs import configure_logging
-    from daemon.watcher import StartError, Watcher
-    from rules.errors import ConfigError
+    from calwarden.daemon.intake.watcher import StartError, Watcher
+    from calwarden.daemon.logs import configure_logging
+    from calwarden.daemon.settings.config import plan_watch
+    from calwarden.rules.errors import ConfigError
 
     config = _load_config_or_say_why(args.config)
     if config is None:
@@ -359,7 +359,7 @@ def _watch(args: argparse.Namespace) -> int:
 
 def _daemon_folders(args: argparse.Namespace) -> tuple[Path, Path, AppConfig] | None:
     """The daemon's output and state folders and configuration, from --out / --config."""
-    from daemon.config import AppConfig
+    from calwarden.daemon.settings.config import AppConfig
 
     out = (args.out or Path.cwd()).resolve()
     state_dir = out / ".calwarden"
@@ -379,7 +379,7 @@ def _daemon_folders(args: argparse.Namespace) -> tuple[Path, Path, AppConfig] | 
 
 
 def _status(args: argparse.Namespace) -> int:
-    from daemon.status import status_report
+    from calwarden.daemon.cli.status import status_report
 
     folders = _daemon_folders(args)
     if folders is None:
@@ -393,8 +393,8 @@ def _status(args: argparse.Namespace) -> int:
 def _chart(args: argparse.Namespace) -> int:
     import csv
 
-    from daemon.control_log import SeriesFilter, export_rows, recompute_baselines
-    from daemon.ledger import LEDGER_NAME, Ledger, LedgerError, timestamp
+    from calwarden.daemon.control_log.log import SeriesFilter, export_rows, recompute_baselines
+    from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, LedgerError, timestamp
 
     folders = _daemon_folders(args)
     if folders is None:
@@ -432,7 +432,7 @@ def _chart(args: argparse.Namespace) -> int:
                 ledger.set_limits(tuple(limits))
             finally:
                 ledger.close()
-            from daemon.control_log import series_name
+            from calwarden.daemon.control_log.log import series_name
 
             for entry in limits:
                 print(
@@ -443,7 +443,7 @@ def _chart(args: argparse.Namespace) -> int:
                 print(f"unchanged: {reason}")
             print(f"{len(limits)} series given new limits, set {now}; earlier limits kept")
             return EXIT_PASS
-        from daemon.chart_files import draw_charts
+        from calwarden.daemon.outputs.pictures import draw_charts
 
         ledger = Ledger(ledger_path, read_only=True)
         try:
@@ -460,9 +460,9 @@ def _chart(args: argparse.Namespace) -> int:
 
 
 def _alert(args: argparse.Namespace) -> int:
-    from daemon.alert_sender import send_test_message
-    from daemon.alert_transport import DeliveryError
-    from daemon.config import resolve_alert_paths
+    from calwarden.daemon.alerts.sender import send_test_message
+    from calwarden.daemon.alerts.transport import DeliveryError
+    from calwarden.daemon.settings.config import resolve_alert_paths
 
     if args.alert_command != "test":
         print("calwarden: say what to do: calwarden alert test [--config CFG]", file=sys.stderr)
@@ -488,7 +488,7 @@ def _alert(args: argparse.Namespace) -> int:
 
 
 def _demo(args: argparse.Namespace) -> int:
-    from daemon.demo import run_demo
+    from calwarden.daemon.cli.demo import run_demo
 
     return run_demo(args.dir)
 
@@ -496,7 +496,7 @@ def _demo(args: argparse.Namespace) -> int:
 def main(argv: Sequence[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     if args.version:
-        from daemon.verdict_json import calwarden_version
+        from calwarden.daemon.outputs.verdict_json import calwarden_version
 
         print(f"calwarden {calwarden_version()}")
         return EXIT_PASS

@@ -34,8 +34,8 @@ from datetime import datetime
 from operator import itemgetter
 from pathlib import Path
 
-from rules.errors import ConfigError, InputError
-from rules.model import Kind, Reading, Run
+from calwarden.rules.errors import ConfigError, InputError
+from calwarden.rules.model import Kind, Reading, Run
 
 __all__ = [
     "MAX_FILE_BYTES",

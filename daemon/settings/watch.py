@@ -13,9 +13,9 @@ from typing import Any
 
 from pydantic import Field, field_validator
 
-from daemon.formats import ExportFormat
-from daemon.section import Section
-from rules.criteria import Criteria
+from calwarden.daemon.settings.formats import ExportFormat
+from calwarden.daemon.settings.section import Section
+from calwarden.rules.criteria import Criteria
 
 #: Names an instrument or its software writes while a file is still being written.
 DEFAULT_IGNORE = ("~*", ".*", "*.tmp", "*.part")

@@ -13,9 +13,8 @@ from collections import Counter
 from dataclasses import dataclass, replace
 from pathlib import Path
 
-from daemon.config import AppConfig
-from daemon.layout import Detected, export_table
-from daemon.reader import (
+from calwarden.daemon.parsing.exports import Detected, export_table
+from calwarden.daemon.parsing.reader import (
     NATIVE_FIELDS,
     RawTable,
     decode_table,
@@ -23,8 +22,9 @@ from daemon.reader import (
     normalise,
     read_file_bytes,
 )
-from rules.errors import InputError
-from rules.model import Reading
+from calwarden.daemon.settings.config import AppConfig
+from calwarden.rules.errors import InputError
+from calwarden.rules.model import Reading
 
 #: Rows shown normalised, and problems listed at most.
 SHOWN_ROWS = 8

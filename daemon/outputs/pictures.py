@@ -14,11 +14,16 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from daemon.control_log import ControlSettings, SeriesFilter, series_limits, series_name
-from daemon.ledger import Ledger, SeriesKey, StoredLimits
-from daemon.outputs import atomic_write
-from rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
-from rules.verdict import Severity
+from calwarden.daemon.control_log.log import (
+    ControlSettings,
+    SeriesFilter,
+    series_limits,
+    series_name,
+)
+from calwarden.daemon.outputs.files import atomic_write
+from calwarden.daemon.stores.ledger import Ledger, SeriesKey, StoredLimits
+from calwarden.rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
+from calwarden.rules.verdict import Severity
 
 CHARTS_FOLDER = "charts"
 _HISTORY = 1000  # points read for one chart (it draws the last chart_points of them)
@@ -63,7 +68,14 @@ def _limits_note(stored: StoredLimits | None, fixed: bool) -> str:
 
 def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> Any:
     """The :class:`daemon.charts.ControlChart` of one series, as the ledger has it now."""
-    from daemon.charts import BASELINE, IN_CONTROL, REJECTION, WARNING, ChartPoint, ControlChart
+    from calwarden.daemon.outputs.drawing import (
+        BASELINE,
+        IN_CONTROL,
+        REJECTION,
+        WARNING,
+        ChartPoint,
+        ControlChart,
+    )
 
     points = ledger.series_points(key, last=_HISTORY)
     limits, stored = series_limits(ledger, settings, key)
@@ -135,7 +147,7 @@ def draw_series(
     ledger: Ledger, settings: ControlSettings, charts_dir: Path, keys: Iterable[SeriesKey]
 ) -> list[Path]:
     """Draw the given series' charts; returns the files written."""
-    from daemon.charts import control_chart_png
+    from calwarden.daemon.outputs.drawing import control_chart_png
 
     written = []
     for key in keys:
@@ -158,7 +170,7 @@ def draw_calibration(
     document: Mapping[str, Any], out_folder: Path, stem: str, analyte: str
 ) -> Path:
     """The picture of one calibration of a verdict: the curve over its standards, residuals."""
-    from daemon.charts import calibration_png
+    from calwarden.daemon.outputs.drawing import calibration_png
 
     path = out_folder / calibration_picture_name(stem, analyte)
     out_folder.mkdir(parents=True, exist_ok=True)

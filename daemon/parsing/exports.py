@@ -61,8 +61,7 @@ from xml.etree import ElementTree
 
 import openpyxl  # type: ignore[import-untyped]
 
-from daemon.formats import ColumnByPattern, ColumnRef, ExportFormat, KindSection, NominalSection
-from daemon.reader import (
+from calwarden.daemon.parsing.reader import (
     _ALLOWED_KINDS,
     _KINDS,
     MAX_FILE_BYTES,
@@ -77,8 +76,15 @@ from daemon.reader import (
     normalise,
     read_file_bytes,
 )
-from rules.errors import InputError
-from rules.model import NEEDS_NOMINAL
+from calwarden.daemon.settings.formats import (
+    ColumnByPattern,
+    ColumnRef,
+    ExportFormat,
+    KindSection,
+    NominalSection,
+)
+from calwarden.rules.errors import InputError
+from calwarden.rules.model import NEEDS_NOMINAL
 
 __all__ = ["Detected", "export_table", "read_export"]
 

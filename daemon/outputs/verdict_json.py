@@ -13,8 +13,16 @@ import math
 from importlib.metadata import PackageNotFoundError, version
 from typing import Any
 
-from rules.calibration import Fit
-from rules.verdict import AdditionSeries, Calibration, Finding, Flag, Result, Severity, Verdict
+from calwarden.rules.calibration import Fit
+from calwarden.rules.verdict import (
+    AdditionSeries,
+    Calibration,
+    Finding,
+    Flag,
+    Result,
+    Severity,
+    Verdict,
+)
 
 SCHEMA_VERSION = 1
 CAUTION = (

@@ -18,13 +18,13 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from daemon.alert_sender import OUTBOX_FOLDER
-from daemon.config import load_config, plan_watch
-from daemon.intake import Outcome
-from daemon.logs import LOG_NAME, configure_logging
-from daemon.watcher import StartError, Watcher
+from calwarden.daemon.alerts.sender import OUTBOX_FOLDER
+from calwarden.daemon.intake.accept import Outcome
+from calwarden.daemon.intake.watcher import StartError, Watcher
+from calwarden.daemon.logs import LOG_NAME, configure_logging
+from calwarden.daemon.settings.config import load_config, plan_watch
 
-DEMO_RUNS = Path(__file__).resolve().parent.parent / "fixtures" / "demo"
+DEMO_RUNS = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 MARKER = ".calwarden-demo"
 SETTLE_SECONDS = 1.0  # shorter than the daemon's default, so that the demo does not drag
 _WAIT_SECONDS = 60.0

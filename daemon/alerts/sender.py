@@ -34,7 +34,7 @@ from typing import Any
 
 import structlog
 
-from daemon.alert_content import (
+from calwarden.daemon.alerts.content import (
     daemon_alert,
     digest_alert,
     email_message,
@@ -42,12 +42,12 @@ from daemon.alert_content import (
     payload_bytes,
     webhook_payload,
 )
-from daemon.alert_settings import AlertSettings
-from daemon.alert_transport import DeliveryError, post_webhook, send_email
-from daemon.control_log import ControlSettings, series_name
-from daemon.ledger import LEDGER_NAME, LedgerError, NewAlert, SeriesKey, timestamp
-from daemon.outbox import Delivery, Outbox, StoredAlert
-from daemon.outputs import atomic_write
+from calwarden.daemon.alerts.settings import AlertSettings
+from calwarden.daemon.alerts.transport import DeliveryError, post_webhook, send_email
+from calwarden.daemon.control_log.log import ControlSettings, series_name
+from calwarden.daemon.outputs.files import atomic_write
+from calwarden.daemon.stores.ledger import LEDGER_NAME, LedgerError, NewAlert, SeriesKey, timestamp
+from calwarden.daemon.stores.outbox import Delivery, Outbox, StoredAlert
 
 log = structlog.get_logger("calwarden")
 
@@ -280,8 +280,8 @@ class AlertSender:
         series = alert.summary.get("control_series") or []
         if not series or self.control is None or self.settings.inline_charts == 0:
             return []
-        from daemon.chart_files import build_chart, safe_name
-        from daemon.charts import control_chart_png
+        from calwarden.daemon.outputs.drawing import control_chart_png
+        from calwarden.daemon.outputs.pictures import build_chart, safe_name
 
         assert self._outbox is not None
         pictures = []

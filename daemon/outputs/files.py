@@ -15,11 +15,11 @@ import time
 from pathlib import Path
 from typing import Any
 
-from daemon.reader import RawTable, header_key
-from daemon.report import render
-from daemon.verdict_json import dump_verdict
-from rules.model import Kind
-from rules.verdict import Result, Verdict
+from calwarden.daemon.outputs.report import render
+from calwarden.daemon.outputs.verdict_json import dump_verdict
+from calwarden.daemon.parsing.reader import RawTable, header_key
+from calwarden.rules.model import Kind
+from calwarden.rules.verdict import Result, Verdict
 
 #: Columns the flagged copy adds after the input's own.
 ADDED_COLUMNS = ("concentration", "uncertainty", "result_unit", "flags")

@@ -16,7 +16,7 @@ from typing import Literal
 
 from pydantic import Field, field_validator, model_validator
 
-from daemon.section import Section
+from calwarden.daemon.settings.section import Section
 
 #: What can raise an alert.
 #: fail: a run failed its criteria; error: a file could not be judged;

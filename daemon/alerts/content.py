@@ -26,9 +26,9 @@ from email.policy import SMTP
 from email.utils import format_datetime
 from typing import Any
 
-from daemon.control_log import series_name
-from daemon.ledger import SeriesKey
-from daemon.verdict_json import CAUTION
+from calwarden.daemon.control_log.log import series_name
+from calwarden.daemon.outputs.verdict_json import CAUTION
+from calwarden.daemon.stores.ledger import SeriesKey
 
 #: How much of one piece of file text may go into a header.
 HEADER_PIECE_LIMIT = 80

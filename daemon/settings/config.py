@@ -15,7 +15,7 @@ from typing import Any
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-from daemon.alert_settings import (
+from calwarden.daemon.alerts.settings import (
     AlertSettings,
     DailySummarySettings,
     EmailSettings,
@@ -24,8 +24,8 @@ from daemon.alert_settings import (
     ThrottleSettings,
     WebhookSettings,
 )
-from daemon.control_log import ControlSettings, FixedLimits
-from daemon.formats import (
+from calwarden.daemon.control_log.log import ControlSettings, FixedLimits
+from calwarden.daemon.settings.formats import (
     ColumnByPattern,
     ExportFormat,
     FooterSection,
@@ -35,10 +35,10 @@ from daemon.formats import (
     NominalSection,
     WideSection,
 )
-from daemon.watch_settings import InboxSettings, WatchSettings, merge_criteria
-from rules.criteria import AnalyteCriteria, Criteria
-from rules.errors import ConfigError
-from rules.evaluate import active_rules
+from calwarden.daemon.settings.watch import InboxSettings, WatchSettings, merge_criteria
+from calwarden.rules.criteria import AnalyteCriteria, Criteria
+from calwarden.rules.errors import ConfigError
+from calwarden.rules.evaluate import active_rules
 
 
 class AppConfig(BaseModel):

@@ -27,7 +27,7 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from daemon.ledger import Ledger, NewAlert
+from calwarden.daemon.stores.ledger import Ledger, NewAlert
 
 
 @dataclass(frozen=True, slots=True)

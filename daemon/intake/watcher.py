@@ -47,15 +47,15 @@ from watchdog.observers import Observer
 from watchdog.observers.api import BaseObserver
 from watchdog.observers.polling import PollingObserver
 
-from daemon.alert_sender import AlertSender, daemon_trouble, emergency_alert
-from daemon.chart_files import CHARTS_FOLDER, draw_calibration, draw_series
-from daemon.config import Inbox, WatchPlan
-from daemon.intake import Intake, Outcome, OutputError
-from daemon.ledger import LEDGER_NAME, Ledger, LedgerError, SeriesKey
-from daemon.lock import StateLock
-from daemon.outputs import is_leftover_temporary
-from daemon.reader import MAX_FILE_BYTES
-from daemon.verdict_json import calwarden_version
+from calwarden.daemon.alerts.sender import AlertSender, daemon_trouble, emergency_alert
+from calwarden.daemon.intake.accept import Intake, Outcome, OutputError
+from calwarden.daemon.intake.lock import StateLock
+from calwarden.daemon.outputs.files import is_leftover_temporary
+from calwarden.daemon.outputs.pictures import CHARTS_FOLDER, draw_calibration, draw_series
+from calwarden.daemon.outputs.verdict_json import calwarden_version
+from calwarden.daemon.parsing.reader import MAX_FILE_BYTES
+from calwarden.daemon.settings.config import Inbox, WatchPlan
+from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, LedgerError, SeriesKey
 
 log = structlog.get_logger("calwarden")
 
@@ -160,7 +160,7 @@ class Watcher:
 
     def start(self) -> None:
         """Take the state folder's lock, open the ledger and start watching."""
-        from daemon.lock import StateLocked
+        from calwarden.daemon.intake.lock import StateLocked
 
         try:
             self._lock.acquire()
