@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -184,3 +185,46 @@ def test_unwritable_out_still_prints_the_json(
     captured = capsys.readouterr()
     assert json.loads(captured.out)["status"] == "pass"
     assert "cannot write" in captured.err
+
+
+def test_ascii_terminal_prints_a_passing_verdict() -> None:
+    """With an ASCII-only terminal encoding a passing run still exits 0 (text is replaced)."""
+    env = {**os.environ, "PYTHONIOENCODING": "ascii"}
+    done = subprocess.run(
+        [sys.executable, "-m", "calwarden.daemon", "check", str(FIXTURES / "bwl-metals-pass.csv")],
+        env=env,
+        capture_output=True,
+        timeout=120,
+        check=False,
+    )
+    assert done.returncode == 0, done.stderr
+    assert b"Traceback" not in done.stderr
+
+
+def test_closed_pipe_ends_quietly() -> None:
+    """A reader that closes the pipe early ends the command quietly, with no traceback."""
+    command = [sys.executable, "-m", "calwarden.daemon", "check", str(PASSING), "--json"]
+    with subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE) as process:
+        assert process.stdout is not None and process.stderr is not None
+        process.stdout.close()  # before the command has started: its first write meets no reader
+        errors = process.stderr.read()
+        code = process.wait(timeout=120)
+    assert b"Traceback" not in errors and b"BrokenPipe" not in errors
+    assert code == 141
+
+
+def test_a_crash_exits_2_with_one_line(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """An uncaught exception is one line on stderr and exit 2, never 1 ("fail")."""
+    import calwarden.daemon.cli.main as cli
+
+    def broken(args: object) -> int:
+        raise RuntimeError("something of ours broke")
+
+    monkeypatch.setattr(cli, "_rules", broken)
+    assert cli.main(["rules"]) == 2
+    assert (
+        capsys.readouterr().err
+        == "calwarden: internal error: RuntimeError: something of ours broke\n"
+    )

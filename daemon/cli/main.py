@@ -493,7 +493,38 @@ def _demo(args: argparse.Namespace) -> int:
     return run_demo(args.dir)
 
 
+#: What a command returns when the reader of its output went away (``| head -1``): the
+#: shell's own code for a writer ended by a closed pipe, so `set -o pipefail` still sees it.
+EXIT_CLOSED_PIPE = 141
+
+
+def _tolerant_output() -> None:
+    """Text output never fails on the terminal's encoding: what it cannot show is replaced."""
+    for stream in (sys.stdout, sys.stderr):
+        reconfigure = getattr(stream, "reconfigure", None)
+        if reconfigure is not None:
+            reconfigure(errors="replace")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    """Run one command; never a traceback and never exit 1 (which means "fail") on a crash."""
+    _tolerant_output()
+    try:
+        return _dispatch(argv)
+    except BrokenPipeError:
+        # The reader closed the pipe: end quietly. Point stdout at /dev/null so that the
+        # interpreter's final flush does not complain about the pipe once more.
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_CLOSED_PIPE
+    except Exception as error:  # a bug of ours: one line, exit 2, never 1 (which means "fail")
+        print(f"calwarden: internal error: {type(error).__name__}: {error}", file=sys.stderr)
+        return EXIT_ERROR
+
+
+def _dispatch(argv: Sequence[str] | None) -> int:
     args = _parser().parse_args(argv)
     if args.version:
         from calwarden.daemon.outputs.verdict_json import calwarden_version
