@@ -21,6 +21,7 @@ from watchdog.observers.polling import PollingObserver
 
 from calwarden.daemon.intake.accept import Outcome
 from calwarden.daemon.intake.watcher import StartError, Watcher
+from calwarden.daemon.outputs.files import STEM_LIMIT
 from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
 from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
 
@@ -492,3 +493,32 @@ def test_pictures_are_drawn_when_the_daemon_is_idle(
     charts = list((out / "charts").rglob("*.png"))
     assert len(charts) == len(document["control_charts"])
     assert all(p.read_bytes().startswith(b"\x89PNG") for p in [*charts, out / pictures[0]])
+
+
+@pytest.mark.parametrize(
+    "name", ["r" * 240, "µ" * 78, "é" * 120], ids=["240-ascii", "78-3byte", "120-2byte"]
+)
+def test_too_long_a_name_gets_shortened_outputs_and_watching_goes_on(
+    inbox: Path, out: Path, start: Callable[[WatchPlan], Running], name: str
+) -> None:
+    """A file whose outputs' names would pass 255 bytes is judged under a shortened stem."""
+    running = start(plan_for(inbox, out))
+    (inbox / f"{name}.csv").write_bytes(PASSING)
+    assert running.wait_path(f"{name}.csv").status == "pass"
+    (written,) = out.glob("*.verdict.json")
+    assert len(written.name.removesuffix(".verdict.json").encode()) <= STEM_LIMIT
+    assert verdict(written)["source"]["path"].endswith(f"{name}.csv")
+    (inbox / "next.csv").write_bytes(FAILING)
+    assert running.wait_path("next.csv").status == "fail"
+    assert running.watcher.fault is None
+
+
+def test_two_long_names_alike_at_the_start_get_two_outputs(
+    inbox: Path, out: Path, start: Callable[[WatchPlan], Running]
+) -> None:
+    """Two long names that differ only after the cut get two verdicts, not one."""
+    running = start(plan_for(inbox, out))
+    for ending in ("a", "b"):
+        (inbox / f"{'r' * 240}{ending}.csv").write_bytes(small_run(ord(ending)))
+    running.wait_outcomes(2)
+    assert len(list(out.glob("*.verdict.json"))) == 2

@@ -163,7 +163,7 @@ def _check(args: argparse.Namespace) -> int:
     # One short-lived process building many small acyclic objects: the cycle collector
     # would only rescan them over and over (about a tenth of a large run's time).
     gc.disable()
-    from calwarden.daemon.outputs.files import write_outputs
+    from calwarden.daemon.outputs.files import fitting_stem, write_outputs
     from calwarden.daemon.outputs.report import render
     from calwarden.daemon.outputs.verdict_json import dump_verdict
     from calwarden.daemon.pipeline import judge_file
@@ -183,7 +183,9 @@ def _check(args: argparse.Namespace) -> int:
     document = judgement.document
     if args.out is not None:
         try:
-            write_outputs(args.out, args.file.stem, document, judgement.table, judgement.verdict)
+            write_outputs(
+                args.out, fitting_stem(args.file.stem), document, judgement.table, judgement.verdict
+            )
         except OSError as error:
             print(f"calwarden: cannot write to {args.out}: {error}", file=sys.stderr)
             if args.json:  # --json always puts the verdict on stdout

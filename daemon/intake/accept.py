@@ -35,7 +35,7 @@ import structlog
 from calwarden.daemon.alerts.content import file_alert, payload_bytes
 from calwarden.daemon.alerts.settings import AlertSettings
 from calwarden.daemon.control_log.log import Assessment, amend, assess
-from calwarden.daemon.outputs.files import output_files, write_files
+from calwarden.daemon.outputs.files import fitting_stem, output_files, write_files
 from calwarden.daemon.outputs.pictures import calibration_picture_name
 from calwarden.daemon.outputs.report import render
 from calwarden.daemon.outputs.verdict_json import calwarden_version
@@ -175,13 +175,13 @@ class Intake:
     def _output_stem(self, inbox: Inbox, relative: str) -> str:
         """Where this file's outputs go, relative to the inbox's output folder."""
         pure = PurePosixPath(relative)
-        stem = pure.with_suffix("").as_posix()
+        stem = fitting_stem(pure.with_suffix("").as_posix())
         owner = self.ledger.stem_owner(inbox.name, stem)
         if VERSION_MARK in pure.name or (owner is not None and owner != relative):
             # ``run.csv`` and ``run.txt`` both judged, or a name that looks like an
             # earlier version's: keep the whole name so that no verdict overwrites another.
             stem = pure.as_posix()
-        return stem
+        return fitting_stem(stem)
 
     def _judge(
         self, inbox: Inbox, path: Path, relative: str, data: bytes | None, seen: Seen

@@ -8,6 +8,7 @@ file is never written to.
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import os
 import tempfile
@@ -24,6 +25,40 @@ from calwarden.rules.verdict import Result, Verdict
 #: Columns the flagged copy adds after the input's own.
 ADDED_COLUMNS = ("concentration", "uncertainty", "result_unit", "flags")
 _REPLACE_ATTEMPTS = 5  # Windows refuses os.replace while another process holds the target open
+
+
+#: Bytes an output stem's own name may take. File systems allow 255 bytes a name, and
+#: an output adds up to about 95 to its stem: ``@v<version>``, the longest suffix
+#: (``.calibration-<analyte>.png``, the analyte part capped at :data:`PART_LIMIT`) and the
+#: temporary name's ``.`` prefix and ``.<8 random>.tmp``.
+STEM_LIMIT = 160
+#: Bytes of an analyte, level or instrument name inside an output's file name.
+PART_LIMIT = 48
+
+
+def shortened(name: str, limit: int) -> str:
+    """``name`` when it fits in ``limit`` UTF-8 bytes, else a cut of it plus a digest.
+
+    The digest is of the whole name, so two long names that share their first bytes
+    still get two outputs; the cut never splits a character.
+    """
+    encoded = name.encode("utf-8")
+    if len(encoded) <= limit:
+        return name
+    digest = hashlib.sha256(encoded).hexdigest()[:12]
+    head = encoded[: limit - len(digest) - 1].decode("utf-8", errors="ignore")
+    return f"{head}~{digest}"
+
+
+def fitting_stem(stem: str) -> str:
+    """An output stem (``folder/name``) whose files' names fit the file system.
+
+    Only the last part can be too long: the folders are the inbox's own, which exist.
+    The original name stays in the verdict (``source``) and the ledger (``path``).
+    """
+    folder, _, name = stem.rpartition("/")
+    fitted = shortened(name, STEM_LIMIT)
+    return f"{folder}/{fitted}" if folder else fitted
 
 
 def _current_umask() -> int:

@@ -20,7 +20,7 @@ from calwarden.daemon.control_log.log import (
     series_limits,
     series_name,
 )
-from calwarden.daemon.outputs.files import atomic_write
+from calwarden.daemon.outputs.files import PART_LIMIT, atomic_write, shortened
 from calwarden.daemon.stores.ledger import Ledger, SeriesKey, StoredLimits
 from calwarden.rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
 from calwarden.rules.verdict import Severity
@@ -37,14 +37,16 @@ def safe_name(text: str) -> str:
 
 def chart_path(charts_dir: Path, key: SeriesKey) -> Path:
     """``charts/<instrument>/<analyte>--<kind>[--<level>].png``."""
-    parts = [safe_name(key.analyte), key.kind]
+    parts = [shortened(safe_name(key.analyte), PART_LIMIT), key.kind]
     if key.level and key.kind not in ("ISTD", "slope"):
-        parts.append(safe_name(key.level))
-    return charts_dir / safe_name(key.instrument) / ("--".join(parts) + ".png")
+        parts.append(shortened(safe_name(key.level), PART_LIMIT))
+    return (
+        charts_dir / shortened(safe_name(key.instrument), PART_LIMIT) / ("--".join(parts) + ".png")
+    )
 
 
 def calibration_picture_name(stem: str, analyte: str) -> str:
-    return f"{stem}.calibration-{safe_name(analyte)}.png"
+    return f"{stem}.calibration-{shortened(safe_name(analyte), PART_LIMIT)}.png"
 
 
 def _when(text: str | None) -> datetime | None:
