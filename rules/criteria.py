@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
@@ -70,6 +71,10 @@ class AnalyteCriteria(_Frozen):
     @model_validator(mode="after")
     def _ranges_ordered(self) -> AnalyteCriteria:
         for name, value in self:
+            numbers = value if isinstance(value, tuple) else (value,)
+            if any(isinstance(n, float) and math.isnan(n) for n in numbers):
+                # NaN compares false with everything, so a NaN limit would pass every value.
+                raise ValueError(f"{name}: not a number (NaN) cannot be a limit")
             if name.endswith("_recovery_pct") and value[0] >= value[1]:
                 raise ValueError(f"{name}: low limit {value[0]} must be below high {value[1]}")
         return self

@@ -422,3 +422,15 @@ def test_a_wide_range_is_drawn_on_log_axes() -> None:
     figure = calibration_figure("metolachlor", calibration)
     assert figure.axes[0].get_xscale() == "log" and figure.axes[0].get_yscale() == "log"
     assert figure.axes[1].get_xlabel() == "nominal concentration (ng/mL), log scale"
+
+
+@pytest.mark.parametrize("name", [".", "..", "...", "/..", " .. "])
+def test_dot_names_never_leave_the_charts_folder(name: str, tmp_path: Path) -> None:
+    """An instrument or analyte named `.` or `..` gets a folder of its own inside charts/."""
+    from calwarden.daemon.outputs.pictures import chart_path
+    from calwarden.daemon.stores.ledger import SeriesKey
+
+    charts = tmp_path / "charts"
+    path = chart_path(charts, SeriesKey(name, name, "CCV", "1"))
+    assert path.resolve().is_relative_to(charts.resolve())
+    assert ".." not in path.relative_to(charts).parts

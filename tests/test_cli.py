@@ -228,3 +228,29 @@ def test_a_crash_exits_2_with_one_line(
         capsys.readouterr().err
         == "calwarden: internal error: RuntimeError: something of ours broke\n"
     )
+
+
+def test_flagged_copy_neutralises_formulas_but_not_numbers(tmp_path: Path) -> None:
+    """A sample id that a spreadsheet would run as a formula is written as text; numbers stay."""
+    text = PASSING.read_text(encoding="utf-8")
+    first_sample = next(line for line in text.splitlines() if ",sample," in line).split(",")[1]
+    attack = tmp_path / "attack.csv"
+    attack.write_text(text.replace(f",{first_sample},", ",=cmd|' /C calc'!A0,"), encoding="utf-8")
+    main(["check", str(attack), "--out", str(tmp_path)])
+    with (tmp_path / "attack.flagged.csv").open(encoding="utf-8", newline="") as stream:
+        rows = list(csv.DictReader(stream))
+    ids = {row["sample_id"] for row in rows}
+    assert "'=cmd|' /C calc'!A0" in ids and "=cmd|' /C calc'!A0" not in ids
+    assert all(float(row["response"]) == float(row["response"]) for row in rows)
+
+
+@pytest.mark.parametrize(
+    ("cell", "written"),
+    [("=1+1", "'=1+1"), ("+1+1", "'+1+1"), ("@SUM(A1)", "'@SUM(A1)"), ("\tx", "'\tx"),
+     ("-0.5", "-0.5"), ("+1e-3", "+1e-3"), ("Cu", "Cu")],
+)  # fmt: skip
+def test_formula_like_cells_get_a_leading_quote(cell: str, written: str) -> None:
+    """Text starting =, +, -, @, tab or CR gets a leading quote (OWASP CSV injection)."""
+    from calwarden.daemon.outputs.files import neutralised
+
+    assert neutralised(cell) == written

@@ -64,6 +64,19 @@ def test_inverted_recovery_limits_are_refused() -> None:
         build_criteria({"defaults": {"lcs_recovery_pct": [120, 80]}})
 
 
+@pytest.mark.parametrize(
+    "override",
+    [{"ccv_recovery_pct": [float("nan"), float("nan")]}, {"ccv_recovery_pct": [90, float("nan")]}],
+    ids=["both", "one"],
+)
+def test_nan_limits_are_refused(override: dict[str, object]) -> None:
+    """A NaN limit (which every comparison would pass) is refused, for defaults and analytes."""
+    with pytest.raises(ConfigError, match="NaN"):
+        build_criteria({"defaults": override})
+    with pytest.raises(ConfigError, match="NaN"):
+        build_criteria({"analytes": {"Cu": override}})
+
+
 def test_unknown_disabled_rule_is_a_config_error() -> None:
     """Switching off a rule id that does not exist is a configuration error."""
     with pytest.raises(ConfigError, match=r"unknown rule id 'check\.recovry'"):

@@ -94,6 +94,25 @@ def atomic_write(path: Path, data: bytes) -> None:
         raise
 
 
+#: A text cell starting with one of these is read as a formula by spreadsheet programs
+#: (OWASP, "CSV Injection": =, +, -, @, tab and carriage return).
+_FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutralised(cell: str) -> str:
+    """A cell a spreadsheet shows as text: formula-like text gets a leading ``'``.
+
+    Numbers (``-0.5``, ``+1e-3``) are left alone, so the copy stays machine-readable.
+    """
+    if not cell.startswith(_FORMULA_STARTS):
+        return cell
+    try:
+        float(cell)
+    except ValueError:
+        return "'" + cell
+    return cell
+
+
 def _cell(value: float | None) -> str:
     return "" if value is None else repr(float(value))
 
@@ -121,7 +140,7 @@ def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
     added = [name if name not in header else f"{name}_calwarden" for name in ADDED_COLUMNS]
     buffer = io.StringIO(newline="")
     writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow([*header, *added])
+    writer.writerow([*(neutralised(name) for name in header), *added])
     keys = [header_key(name) for name in header]
     seq_column, analyte_column = keys.index("seq"), keys.index("analyte")
     for row in table.rows:
@@ -141,7 +160,7 @@ def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
             extra = [_cell(back_calculated[key]), "", "", ""]
         else:
             extra = ["", "", "", ""]
-        writer.writerow([*row.fields, *extra])
+        writer.writerow([*(neutralised(field) for field in row.fields), *extra])
     return buffer.getvalue().encode("utf-8")
 
 

@@ -31,8 +31,12 @@ _UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
 
 
 def safe_name(text: str) -> str:
-    """A file-name-safe form of an analyte, level or instrument name."""
-    return _UNSAFE.sub("_", text.replace("µ", "u")).strip("_") or "_"
+    """A file-name-safe form of an analyte, level or instrument name.
+
+    Never ``.`` or ``..`` (nor only dots): as a folder those would leave ``charts/``.
+    """
+    safe = _UNSAFE.sub("_", text.replace("µ", "u")).strip("_") or "_"
+    return safe if safe.strip(".") else safe.replace(".", "_")
 
 
 def chart_path(charts_dir: Path, key: SeriesKey) -> Path:
