@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import stat
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -36,7 +37,11 @@ class Judgement:
 
 
 def _file_sha256(path: Path) -> str | None:
+    """The file's SHA-256, or None for what is not a regular file (a FIFO or a device would
+    never end, or block for ever) or cannot be read."""
     try:
+        if not stat.S_ISREG(path.stat().st_mode):
+            return None
         with path.open("rb") as stream:
             return hashlib.file_digest(stream, "sha256").hexdigest()
     except OSError:

@@ -254,3 +254,27 @@ def test_formula_like_cells_get_a_leading_quote(cell: str, written: str) -> None
     from calwarden.daemon.outputs.files import neutralised
 
     assert neutralised(cell) == written
+
+
+@pytest.mark.parametrize("kind", ["fifo", "device", "link-to-device", "folder"])
+def test_what_is_not_a_regular_file_is_refused_at_once(tmp_path: Path, kind: str) -> None:
+    """check refuses a FIFO, a device, a link to one or a folder at once, exit 2, no hang."""
+    target = tmp_path / "run.csv"
+    if kind == "fifo":
+        os.mkfifo(target)
+    elif kind == "device":
+        target = Path("/dev/zero")
+    elif kind == "link-to-device":
+        target.symlink_to("/dev/zero")
+    else:
+        target.mkdir()
+    for extra in ([], ["--json"]):
+        done = subprocess.run(
+            [sys.executable, "-m", "calwarden.daemon", "check", str(target), *extra],
+            capture_output=True,
+            text=True,
+            timeout=60,
+            check=False,
+        )
+        assert done.returncode == 2, done.stdout + done.stderr
+        assert "Traceback" not in done.stderr
