@@ -522,3 +522,25 @@ def test_two_long_names_alike_at_the_start_get_two_outputs(
         (inbox / f"{'r' * 240}{ending}.csv").write_bytes(small_run(ord(ending)))
     running.wait_outcomes(2)
     assert len(list(out.glob("*.verdict.json"))) == 2
+
+
+def test_lost_ledger_never_overwrites_an_archived_verdict(
+    inbox: Path, out: Path, start: Callable[[WatchPlan], Running]
+) -> None:
+    """With the ledger lost, the next archive goes to the next free @v number, not over @v1."""
+    plan = plan_for(inbox, out)
+    running = start(plan)
+    (inbox / "run.csv").write_bytes(PASSING)
+    running.wait_outcomes(1)
+    (inbox / "run.csv").write_bytes(FAILING)
+    running.wait_outcomes(2)
+    running.watcher.stop()
+    assert running.watcher.wait(10)
+    for leftover in plan.state_dir.glob(f"{LEDGER_NAME}*"):
+        leftover.unlink()
+    again = start(plan)
+    again.wait_outcomes(1)  # the current file, judged afresh as version 1
+    (inbox / "run.csv").write_bytes(small_run(7))
+    again.wait_outcomes(2)
+    assert verdict(out / "run@v1.verdict.json")["source"]["sha256"] == sha256(PASSING)
+    assert verdict(out / "run@v2.verdict.json")["source"]["sha256"] == sha256(FAILING)

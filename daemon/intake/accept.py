@@ -58,6 +58,21 @@ log = structlog.get_logger("calwarden")
 VERSION_MARK = "@v"
 
 
+def _archive_stem(out_folder: Path, name: str, version: int, verdict: bytes) -> str:
+    """``<name>@v<version>``, or the next number free on disk: an archived verdict is never
+    overwritten, even when a lost ledger starts the numbering again. The same verdict
+    found in a slot is that slot (a repeat after a crash writes it once)."""
+    while True:
+        stem = f"{name}{VERSION_MARK}{version}"
+        existing = out_folder / f"{stem}.verdict.json"
+        try:
+            if existing.read_bytes() == verdict:
+                return stem
+        except FileNotFoundError:
+            return stem
+        version += 1
+
+
 class OutputError(Exception):
     """The output folder cannot be written (full, gone, no permission): a daemon fault."""
 
@@ -380,4 +395,6 @@ class Intake:
         }
         if flagged is not None:
             files[".flagged.csv"] = flagged
-        write_files(out_folder, f"{name}{VERSION_MARK}{previous.version}", files)
+        write_files(
+            out_folder, _archive_stem(out_folder, name, previous.version, document_bytes), files
+        )
