@@ -26,8 +26,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import alarms_calibration  # noqa: E402  (sibling scripts, not a package)
-import alarms_control  # noqa: E402
+import alarms_calibration
+import alarms_control
 
 
 def main() -> int:
