@@ -332,18 +332,18 @@ def test_html_escapes_file_text() -> None:
 
 
 def test_verdict_is_attached_as_json() -> None:
-    """The verdict bytes are attached, unchanged, as application/json named after the file."""
+    """The verdict bytes are attached, unchanged, as application/json named as on disk."""
     verdict = json.dumps({"status": "fail", "run": "run-1204"}).encode()
     parsed = _parsed(_compose(_fail_alert(), verdict=verdict))
     assert parsed.get_content_type() == "multipart/mixed"
     attachment = _part(parsed, "application/json")
-    assert attachment.get_filename() == "run-1204.csv.verdict.json"
+    assert attachment.get_filename() == "run-1204.verdict.json"
     assert attachment.get_content() == verdict
 
 
 def test_verdict_attachment_filename_is_safe() -> None:
     """A hostile path gives an attachment filename of plain characters only."""
-    alert = _fail_alert(path='../"evil\r\nname;<x>.csv')
+    alert = _fail_alert(path='../"evil\r\nname;<x>.csv', verdict='/o/"ev\r\nil;<x>.verdict.json')
     attachment = _part(_parsed(_compose(alert, verdict=b"{}")), "application/json")
     filename = attachment.get_filename()
     assert filename is not None
@@ -517,3 +517,9 @@ def test_a_verdict_too_large_to_attach_is_named_instead() -> None:
     )
     assert not list(message.iter_attachments())
     assert "too large to attach" in message.get_body(("plain",)).get_content()  # type: ignore[union-attr]
+
+
+def test_message_to_nobody_has_the_empty_group_as_to() -> None:
+    """With no recipients (an .eml kept for later) To: is the RFC 5322 empty group."""
+    parsed = _parsed(_compose(_fail_alert(), recipients=()))
+    assert parsed["To"] == "undisclosed-recipients:;"

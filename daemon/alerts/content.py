@@ -382,6 +382,17 @@ def message_id(dedupe_key: str, sender: str) -> str:
     return f"<calwarden.{digest}@{domain}>"
 
 
+def attachment_name(alert: Mapping[str, Any]) -> str:
+    """The verdict attachment's name: the name of the verdict file on disk."""
+    on_disk = str(alert.get("verdict") or "")
+    name = re.split(r"[\\/]", on_disk)[-1] if on_disk else ""
+    if not name.endswith(".verdict.json"):  # an alert stored before the path was kept
+        stem = re.split(r"[\\/]", str(alert.get("path") or "verdict"))[-1].rpartition(".")
+        name = f"{stem[0] or stem[2]}.verdict.json"
+    safe = re.sub(r"[^A-Za-z0-9._@~-]", "_", header_text(name.removesuffix(".verdict.json"), 60))
+    return f"{safe}.verdict.json"
+
+
 def email_message(
     alert: Mapping[str, Any],
     *,
@@ -399,9 +410,9 @@ def email_message(
     message = EmailMessage(policy=SMTP)
     message["Subject"] = subject(alert)
     message["From"] = sender
-    to = list(recipients)
-    if to:
-        message["To"] = ", ".join(to)
+    # With nobody configured (an .eml kept in the outbox folder) the empty group of
+    # RFC 5322 §3.4 keeps the header that mail programs expect.
+    message["To"] = ", ".join(recipients) or "undisclosed-recipients:;"
     message["Date"] = format_datetime(datetime.fromisoformat(created_at))
     message["Message-ID"] = message_id(dedupe_key, sender)
     message["X-Calwarden-Alert"] = header_text(alert.get("kind"))
@@ -420,12 +431,8 @@ def email_message(
                 png, maintype="image", subtype="png", cid=content_id, filename=f"{caption}.png"
             )
     if verdict is not None:
-        name = header_text(str(alert.get("path") or "verdict").rsplit("/", 1)[-1], 60)
         message.add_attachment(
-            verdict,
-            maintype="application",
-            subtype="json",
-            filename=f"{re.sub(r'[^A-Za-z0-9._-]', '_', name)}.verdict.json",
+            verdict, maintype="application", subtype="json", filename=attachment_name(alert)
         )
     return message
 

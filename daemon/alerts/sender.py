@@ -356,7 +356,9 @@ class AlertSender:
         try:
             if delivery.channel == "email":
                 message = self._message(delivery)
-                recipients = [address for _, address in getaddresses(message.get_all("To", []))]
+                recipients = [
+                    address for _, address in getaddresses(message.get_all("To", [])) if address
+                ]
                 refused = send_email(self.settings.email, message, recipients)
                 if refused:
                     log.warning("alert_recipients_refused", alert=alert.id, refused=refused)
