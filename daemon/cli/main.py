@@ -55,7 +55,11 @@ def _parser() -> argparse.ArgumentParser:
         help="judge one run file and print the verdict",
         description="Judge one run file. Exit 0 pass, 1 fail, 2 error.",
     )
-    check.add_argument("file", type=Path, help="the run export (native CSV format)")
+    check.add_argument(
+        "file",
+        type=Path,
+        help="the run export: native CSV, or the layout that --config's format section describes",
+    )
     check.add_argument("--config", type=Path, help="YAML configuration (criteria and overrides)")
     check.add_argument(
         "--json", action="store_true", help="print the verdict JSON on stdout and nothing else"
