@@ -16,6 +16,7 @@ from calwarden.rules.calibration import (
     PARAMETERS,
     Fit,
     Model,
+    Weighting,
     detection_limits,
     fit_calibration,
     mandel_test,
@@ -213,8 +214,15 @@ def _calibrate(
         and criteria.model is Model.LINEAR
         and len(set(non_zero)) >= _MANDEL_MIN_LEVELS
     ):
-        mandel = mandel_test(x, y, criteria.mandel_alpha)
-    limits = detection_limits(fit) if fit is not None else None
+        mandel = mandel_test(
+            x,
+            y,
+            criteria.mandel_alpha,
+            _linearity_weighting(criteria),
+            criteria.linearity_reading_rsd_pct,
+        )
+    blanks = [r.signal for r in rows if r.kind is Kind.BLANK]
+    limits = detection_limits(fit, blanks) if fit is not None else None
     return Calibration(
         analyte=analyte,
         unit=unit,
@@ -231,6 +239,15 @@ def _calibrate(
         range_high=max(non_zero) if non_zero else None,
         problem=problem,
     )
+
+
+def _linearity_weighting(criteria: AnalyteCriteria) -> Weighting:
+    """The weighted space of the linearity test: the calibration's, or the variance model's."""
+    if criteria.weighting is not Weighting.NONE:
+        return criteria.weighting
+    if criteria.linearity_variance == "proportional":
+        return Weighting.INVERSE_X_SQUARED
+    return Weighting.NONE
 
 
 def _mixed_basis(rows: Sequence[Reading], *, use_blanks: bool) -> str | None:
