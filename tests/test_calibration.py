@@ -537,7 +537,7 @@ def test_mandel_with_a_stated_repeatability_uses_a_known_variance() -> None:
 
 
 def test_mandel_sets_a_stated_repeatability_aside_when_the_standards_scatter_more() -> None:
-    """Standards scattering 10 % against a stated 0.1 % fall back to the estimated s² and F(1, N−3)."""
+    """Standards scattering 10 % against a stated 0.1 % fall back to the estimated s², F(1, N−3)."""
     x = [1.0, 2.0, 5.0, 10.0, 20.0, 50.0]
     y = [v * (1.0 + 0.1 * (-1) ** i) for i, v in enumerate(x)]
     result = mandel_test(x, y, 0.01, Weighting.INVERSE_X_SQUARED, reading_rsd_pct=0.1)
