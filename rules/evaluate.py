@@ -41,6 +41,29 @@ from calwarden.rules.verdict import (
 
 #: Kinds that are not read off the curve one by one: calibration points and addition points.
 _NOT_QUANTITATED = frozenset({Kind.BLANK, Kind.CAL, Kind.ADDITION})
+#: Cause before consequence: the order findings are listed in, by rule id prefix (or whole
+#: id). A failed calibration explains failed checks, a failed check or blank explains the
+#: bracket findings, and those explain the samples' flags; the first failure listed is the
+#: headline (``calwarden status``, the log's ``reason``, the alert subject). Unlisted ids
+#: come last, with the samples.
+FINDING_STAGES: dict[str, int] = {
+    "calibration": 0,
+    "check": 1,
+    "blank": 1,
+    "lcs": 1,
+    "istd": 1,
+    "bracket": 2,
+}
+_LAST_STAGE = 3
+
+
+def finding_stage(rule_id: str) -> int:
+    """The stage of a rule's findings in :data:`FINDING_STAGES` (whole id first, then prefix)."""
+    if rule_id in FINDING_STAGES:
+        return FINDING_STAGES[rule_id]
+    return FINDING_STAGES.get(rule_id.split(".", 1)[0], _LAST_STAGE)
+
+
 #: Mandel's test needs this many levels to say anything (ISO 8466-1 asks for at least 5).
 _MANDEL_MIN_LEVELS = 5
 
@@ -78,8 +101,10 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
         results.extend(judged.results)
         additions.extend(judged.additions)
 
-    # Stable sort: within one seq the analytes keep the run's order.
+    # Stable sorts: within one seq the analytes keep the run's order, within one stage
+    # the findings keep the analytes' and the rules' order.
     results.sort(key=_seq_of)
+    findings.sort(key=lambda finding: finding_stage(finding.rule))
     failed = any(f.severity is Severity.FAIL for f in findings)
     return Verdict(
         status=Status.FAIL if failed else Status.PASS,

@@ -156,3 +156,36 @@ def test_fixture_intentions_hold_by_an_independent_numpy_check() -> None:
         check=False,
     )
     assert result.returncode == 0, result.stdout[-2000:] + result.stderr
+
+
+def _check(seq: int, kind: Kind, response: float) -> Reading:
+    return Reading(line=seq, seq=seq, sample_id=f"{kind.value.upper()}-{seq}", kind=kind,
+                   analyte="Zn", response=response, nominal=10.0)  # fmt: skip
+
+
+def test_a_failed_ccv_is_listed_before_the_brackets_it_breaks() -> None:
+    """Root cause first: CCV recovering 83 % is the first failure, its bracket findings follow."""
+    run = _run(
+        _check(20, Kind.ICV, 10150.0),
+        _sample(21, 3000.0),
+        _sample(22, 4000.0),
+        _check(23, Kind.CCV, 8400.0),  # about 83 % of 10 µg/L
+        _sample(24, 5000.0),
+        _check(25, Kind.CCV, 10100.0),
+    )
+    verdict = evaluate(run, build_criteria({}))
+    failures = [f.rule for f in verdict.findings if f.severity is Severity.FAIL]
+    assert failures[0] == "check.recovery"
+    assert "bracket.reportable" in failures[1:]
+
+
+@pytest.mark.parametrize("name", ["bwl-metals-fail.csv", "bwl-lc-istd.csv", "bwl-quadratic.csv"])
+def test_fixture_findings_are_ordered_cause_before_consequence(name: str) -> None:
+    """Every fixture's findings run calibration, checks and blanks, brackets, samples."""
+    from calwarden.daemon.pipeline import judge_file
+    from calwarden.daemon.settings.config import load_config
+    from calwarden.rules.evaluate import finding_stage
+
+    judgement = judge_file(PROJECT / "fixtures" / name, load_config(None))
+    stages = [finding_stage(f.rule) for f in judgement.verdict.findings]
+    assert stages == sorted(stages)
