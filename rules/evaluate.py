@@ -27,11 +27,13 @@ from calwarden.rules.criteria import AnalyteCriteria, Criteria
 from calwarden.rules.errors import ConfigError
 from calwarden.rules.model import Kind, Reading, Run
 from calwarden.rules.registry import AnalyteContext, Rule, all_rules
+from calwarden.rules.replicates import curve_of, replicate_group, replicate_sets
 from calwarden.rules.verdict import (
     AdditionSeries,
     Calibration,
     Finding,
     Flag,
+    ReplicateGroup,
     Result,
     Severity,
     StandardPoint,
@@ -53,6 +55,7 @@ FINDING_STAGES: dict[str, int] = {
     "lcs": 1,
     "istd": 1,
     "bracket": 2,
+    "replicate": 3,
 }
 _LAST_STAGE = 3
 
@@ -92,6 +95,7 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
     calibrations: list[Calibration] = []
     results: list[Result] = []
     additions: list[AdditionSeries] = []
+    replicates: list[ReplicateGroup] = []
     for analyte, rows in by_analyte.items():
         rows.sort(key=lambda r: r.seq)
         judged = _judge_analyte(analyte, tuple(rows), criteria.for_analyte(analyte), rules)
@@ -100,6 +104,7 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
             calibrations.append(judged.calibration)
         results.extend(judged.results)
         additions.extend(judged.additions)
+        replicates.extend(judged.replicates)
 
     # Stable sorts: within one seq the analytes keep the run's order, within one stage
     # the findings keep the analytes' and the rules' order.
@@ -114,6 +119,8 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
         calibrations=tuple(calibrations),
         results=tuple(results),
         additions=tuple(additions),
+        # By first injection; within one, the analytes keep the run's order.
+        replicates=tuple(sorted(replicates, key=lambda group: group.seqs[0])),
     )
 
 
@@ -127,6 +134,7 @@ class _AnalyteJudgement:
     calibration: Calibration | None
     results: list[Result]
     additions: list[AdditionSeries]
+    replicates: list[ReplicateGroup]
 
 
 def _judge_analyte(
@@ -166,7 +174,9 @@ def _judge_analyte(
         if marks:
             result = _with_flags(result, marks, calibration.range_high if calibration else None)
         results.append(result)
-    return _AnalyteJudgement(findings, calibration, results, list(series.values()))
+    fit_of = curve_of(calibration, rows)
+    replicates = [replicate_group(members, fit_of) for members in replicate_sets(results)]
+    return _AnalyteJudgement(findings, calibration, results, list(series.values()), replicates)
 
 
 def _with_flags(result: Result, marks: Iterable[Flag], top: float | None) -> Result:
