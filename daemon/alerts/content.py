@@ -244,6 +244,7 @@ _WHY = {
     "check_failed": "a bracketing check standard failed",
     "not_bracketed": "no check standard brackets it",
     "istd_out": "its internal standard is out of limits",
+    "replicates_disagree": "its replicate injections disagree",
     "not_quantifiable": "no concentration gives its response",
 }
 
