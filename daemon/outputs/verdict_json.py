@@ -121,6 +121,8 @@ def _calibration(calibration: Calibration) -> dict[str, Any]:
                 "critical": _number(calibration.mandel.critical),
                 "alpha": calibration.mandel.alpha,
                 "significant": calibration.mandel.significant,
+                "weighting": calibration.mandel.weighting,
+                "stated_variance": calibration.mandel.stated_variance,
             }
             if calibration.mandel
             else None,
