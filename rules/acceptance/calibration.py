@@ -168,8 +168,8 @@ def calibration_linearity(context: AnalyteContext) -> Iterator[Finding]:
     Settings: ``mandel_alpha`` (0.01), ``linearity_variance`` (proportional),
     ``linearity_reading_rsd_pct`` (none).
 
-    Warns: a detector saturating at the top standards (PG = 212 > F = 34.1).
-    Passes: a straight response (PG = 0.4).
+    Warns: a detector saturating at the top standards, y = 1000·x − 8·x² (PG = 6.9e5
+    > F = 34.1, in 1/x² space). Passes: the straight response of the case base (PG = 0.09).
     """
     calibration = context.calibration
     if calibration is None or calibration.mandel is None:
