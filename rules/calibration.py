@@ -524,64 +524,63 @@ def _fit_average_rf(xa: _Array, ya: _Array) -> Fit:
 class MandelResult:
     """Mandel's fitting test (ISO 8466-1): is a quadratic significantly better than a line?"""
 
-    statistic: float  # PG = DS² / s²(quadratic)
-    critical: float  # F(1 − alpha; 1, N − 3)
+    statistic: float  # PG = DS² / s², s² the quadratic's or the stated one
+    critical: float  # F(1 − alpha; 1, N − 3), or F(1 − alpha; 1, ∞) with a stated variance
     alpha: float
     significant: bool
+    # The weighted space of the test: "none", "1/x" or "1/x2" (weights of the rule, floored).
+    weighting: str = "none"
+    # True when s² came from a stated reading repeatability, not from the residuals.
+    stated_variance: bool = False
 
 
-def _student_t_central_probability(t: float, dof: int) -> float:
-    """P(|T| ≤ t) for Student's t with integer ``dof``, in closed form.
+def f_quantile(probability: float, numerator_dof: float, denominator_dof: float) -> float:
+    """The ``probability`` quantile of Snedecor's F; ``math.inf`` denominator dof is χ²/ν₁.
 
-    Abramowitz & Stegun, Handbook of Mathematical Functions, 26.7.3 and 26.7.4
-    (θ = atan(t/√ν)); exact for integer degrees of freedom, no special functions.
+    scipy.special (fdtri, chdtri), imported on first use: a cold ``calwarden
+    check`` of a run without a linearity test never pays for importing scipy.
     """
-    theta = math.atan(t / math.sqrt(dof))
-    cos2 = math.cos(theta) ** 2
-    if dof % 2 == 1:
-        if dof == 1:
-            return 2.0 * theta / math.pi
-        term, total = math.cos(theta), math.cos(theta)
-        for k in range(3, dof - 1, 2):  # next power of cosθ: ·(k−1)/k·cos²θ
-            term *= (k - 1) / k * cos2
-            total += term
-        return 2.0 / math.pi * (theta + math.sin(theta) * total)
-    term, total = 1.0, 1.0
-    for k in range(2, dof - 1, 2):
-        term *= (k - 1) / k * cos2
-        total += term
-    return math.sin(theta) * total
+    if not 0.0 < probability < 1.0 or numerator_dof <= 0 or denominator_dof <= 0:
+        raise ValueError("probability must be in (0, 1) and the degrees of freedom positive")
+    from scipy import special  # lazy: see the docstring
+
+    if math.isinf(denominator_dof):
+        return float(special.chdtri(numerator_dof, 1.0 - probability)) / numerator_dof
+    return float(special.fdtri(numerator_dof, denominator_dof, probability))
 
 
-def f_quantile_one_numerator(probability: float, denominator_dof: int) -> float:
-    """The ``probability`` quantile of F(1, ν): the square of t(½ + ½·probability; ν).
-
-    Solved by bisection on the closed-form t distribution, so the core needs no
-    scipy at run time (a cold ``calwarden check`` stays fast); tests compare it
-    with scipy.special.fdtri.
-    """
-    if not 0.0 < probability < 1.0 or denominator_dof < 1:
-        raise ValueError("probability must be in (0, 1) and the degrees of freedom at least 1")
-    low, high = 0.0, 1.0
-    while _student_t_central_probability(high, denominator_dof) < probability:
-        high *= 2.0
-    for _ in range(200):
-        middle = 0.5 * (low + high)
-        if middle in (low, high):
-            break
-        if _student_t_central_probability(middle, denominator_dof) < probability:
-            low = middle
-        else:
-            high = middle
-    return (0.5 * (low + high)) ** 2
+#: A stated repeatability is set aside when the residuals scatter more than this test allows.
+_STATED_VARIANCE_CHECK = 0.01
 
 
-def mandel_test(x: Sequence[float], y: Sequence[float], alpha: float = 0.01) -> MandelResult | None:
-    """Mandel's test on unweighted fits; ``None`` with fewer than 4 points.
+def mandel_test(
+    x: Sequence[float],
+    y: Sequence[float],
+    alpha: float = 0.01,
+    weighting: Weighting = Weighting.NONE,
+    reading_rsd_pct: float | None = None,
+) -> MandelResult | None:
+    """Mandel's test in the weighted space ``weighting``; ``None`` with fewer than 4 points.
 
     ISO 8466-1:1990 §4.1.3 (Mandel 1964): DS² = (N−2)·s²(linear) − (N−3)·s²(quadratic),
     PG = DS²/s²(quadratic), curvature significant when PG > F(1 − alpha; 1, N − 3).
     Also ``None`` when fewer than 3 distinct x leave the quadratic undetermined.
+
+    Weighted: both fits use the weights of the rule (1/x or 1/x², floored at the
+    lowest non-zero x, normalised), so s² and DS² are weighted sums of squares
+    and PG follows F(1, N − 3) when the weights are 1/variance up to a factor:
+    generalised least squares turns the weighted problem into ISO 8466-1's
+    homoscedastic one (Draper & Smith, *Applied Regression Analysis*, §9.2 [memory]).
+
+    ``reading_rsd_pct``: a stated repeatability of one reading (from the method's
+    validation). s² is then the variance that repeatability gives in the test's
+    weighted space, mean of w·(rsd·ŷ)² over the standards, and the critical value
+    F(1 − alpha; 1, ∞) (a known variance has infinite degrees of freedom). Six
+    standards leave the estimated s² only three degrees of freedom, F(0.99; 1, 3) =
+    34.1; a known variance brings the critical value to 6.63, which is what lets the
+    test see a 6 % bend at the top against 1 % noise. When the quadratic's
+    residuals scatter significantly more than stated (χ² test at 1 %), the
+    statement is wrong for this run and the estimated s² is used.
     """
     if len(x) < 4:
         return None
@@ -589,18 +588,30 @@ def mandel_test(x: Sequence[float], y: Sequence[float], alpha: float = 0.01) -> 
     if np.unique(xa).size < 3:
         return None
     n = xa.size
-    linear = fit_calibration(xa.tolist(), ya.tolist(), Model.LINEAR)
-    quadratic = fit_calibration(xa.tolist(), ya.tolist(), Model.QUADRATIC)
+    w, _, _ = _rule_weights(xa, weighting) if np.any(xa != 0.0) else (np.ones_like(xa), 0.0, 1.0)
+    linear = fit_weighted(xa.tolist(), ya.tolist(), w.tolist(), Model.LINEAR)
+    quadratic = fit_weighted(xa.tolist(), ya.tolist(), w.tolist(), Model.QUADRATIC)
     assert linear.residual_sd is not None and quadratic.residual_sd is not None  # dof ≥ 1
     var_quad = quadratic.residual_sd**2
     # Rounding can leave a perfect line's DS² a hair below zero.
     ds2 = max((n - 2) * linear.residual_sd**2 - (n - 3) * var_quad, 0.0)
+    variance, dof, stated = var_quad, float(n - 3), False
+    if reading_rsd_pct is not None:
+        predicted = np.array([linear.predict(v) for v in xa.tolist()])
+        known = float(np.mean(w * (reading_rsd_pct / 100.0 * predicted) ** 2))
+        bound = f_quantile(1.0 - _STATED_VARIANCE_CHECK, n - 3, math.inf)
+        if known > 0.0 and var_quad <= bound * known:
+            variance, dof, stated = known, math.inf, True
     # An exact quadratic (s² = 0): curvature is either certain or absent.
-    statistic = ds2 / var_quad if var_quad > 0.0 else (math.inf if ds2 > 0.0 else 0.0)
-    # Lazy: scipy costs a cold CLI start more than the whole budget for importing.
-    critical = f_quantile_one_numerator(1.0 - alpha, n - 3)
+    statistic = ds2 / variance if variance > 0.0 else (math.inf if ds2 > 0.0 else 0.0)
+    critical = f_quantile(1.0 - alpha, 1, dof)
     return MandelResult(
-        statistic=statistic, critical=critical, alpha=alpha, significant=statistic > critical
+        statistic=statistic,
+        critical=critical,
+        alpha=alpha,
+        significant=statistic > critical,
+        weighting=weighting.value,
+        stated_variance=stated,
     )
 
 
@@ -623,18 +634,44 @@ def relative_standard_error(
     return 100.0 * math.sqrt(total / (n - parameters))
 
 
-def detection_limits(fit: Fit) -> tuple[float, float] | None:
-    """(LOD, LOQ) as 3.3·s/b1 and 10·s/b1 (ICH Q2(R2)); ``None`` without s or slope.
+#: Blank readings needed before their SD replaces the lowest standard's in LOD/LOQ.
+MIN_BLANK_REPLICATES = 3
 
-    s is the fit's residual SD and b1 the linear coefficient (the slope at x = 0
-    for a quadratic, the mean RF for average RF), taken as its magnitude.
+
+def detection_limits(fit: Fit, blank_responses: Sequence[float] = ()) -> tuple[float, float] | None:
+    """(LOD, LOQ) as 3.3·σ/b1 and 10·σ/b1 (ICH Q2(R2) §5.4 [memory]); ``None`` without σ or slope.
+
+    b1 is the linear coefficient (the slope at x = 0 for a quadratic, the mean RF
+    for average RF), taken as its magnitude. σ is the SD of a response near zero:
+
+    - unweighted fits: the residual SD s(y/x) (ICH Q2: "the residual standard
+      deviation of a regression line"), the same at every level by assumption;
+    - weighted fits (1/x, 1/x², explicit weights): a weight says the variance
+      changes along the range, so σ is taken at the low end, where LOD and LOQ
+      lie. With at least ``MIN_BLANK_REPLICATES`` blank readings, their SD (ICH
+      Q2: "based on the standard deviation of the blank"); otherwise the
+      residual SD at the lowest non-zero standard, s·sqrt(1/w(x_low)) with w the
+      fit's normalised weight. The weighted residual SD s itself is the SD at the
+      mean weight and moves with the top of the range (adding high standards to
+      the same low ones raised the LOD of a 1/x fit from 0.18 to 1.53).
     """
     if fit.residual_sd is None:
         return None
     slope = abs(fit.coefficients[1])
     if slope == 0.0:
         return None
-    return 3.3 * fit.residual_sd / slope, 10.0 * fit.residual_sd / slope
+    sigma = fit.residual_sd
+    weighted = fit.weighting is not Weighting.NONE or fit.explicit_weights
+    if weighted:
+        if len(blank_responses) >= MIN_BLANK_REPLICATES:
+            sigma = float(np.std(np.asarray(blank_responses, dtype=np.float64), ddof=1))
+        else:
+            if fit.explicit_weights:
+                x_low = min((abs(v) for v, _ in fit.reading_variance if v != 0.0), default=0.0)
+            else:
+                x_low = max(fit.weight_floor, abs(fit.x_low))
+            sigma = fit.residual_sd * math.sqrt(fit._reading_variance_factor(x_low))
+    return 3.3 * sigma / slope, 10.0 * sigma / slope
 
 
 @dataclass(frozen=True, slots=True)

@@ -41,6 +41,13 @@ class AnalyteCriteria(_Frozen):
     back_calculation_lowest_pct: float = Field(default=20.0, gt=0)
     # ISO 8466-1:1990 §4.1.3: F test at the 99 % level.
     mandel_alpha: float = Field(default=0.01, gt=0, lt=1)
+    # Variance model of an unweighted calibration's linearity test: "proportional" tests in
+    # 1/x² space (reading noise grows with the response, as in ICP and chromatography;
+    # common practice), "constant" is ISO 8466-1's homogeneous variance (the plain test).
+    # Weighted calibrations are always tested in their own weights.
+    linearity_variance: Literal["proportional", "constant"] = "proportional"
+    # Reading repeatability in % RSD from the method's validation; None: estimated per run.
+    linearity_reading_rsd_pct: float | None = Field(default=None, gt=0)
     # 8000D: average response factor %RSD ≤ 20 % [memory].
     max_rf_rsd_pct: float = Field(default=20.0, gt=0)
     # 8000D RSE ≤ 20 % [memory]; off by default (None) since the back-calculation rule covers it.
@@ -64,6 +71,10 @@ class AnalyteCriteria(_Frozen):
     spike_max_native_ratio: float = Field(default=4.0, gt=0)  # native > 4× spike: not judged
     spike_max_rpd_pct: float = Field(default=20.0, gt=0)  # matrix spike vs its duplicate
     lcs_recovery_pct: Range = (80.0, 120.0)
+    # --- replicate injections of one sample: common practice (no single source).
+    replicate_max_rsd_pct: float = Field(default=10.0, gt=0)
+    # %RSD judged only when the replicate mean reaches this multiple of the lowest standard.
+    replicate_min_multiple: float = Field(default=5.0, ge=0)
     # --- standard addition: common practice.
     addition_min_points: int = Field(default=3, ge=2)
     addition_min_r_squared: float = Field(default=0.99, ge=0, le=1)

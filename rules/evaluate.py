@@ -16,6 +16,7 @@ from calwarden.rules.calibration import (
     PARAMETERS,
     Fit,
     Model,
+    Weighting,
     detection_limits,
     fit_calibration,
     mandel_test,
@@ -26,11 +27,13 @@ from calwarden.rules.criteria import AnalyteCriteria, Criteria
 from calwarden.rules.errors import ConfigError
 from calwarden.rules.model import Kind, Reading, Run
 from calwarden.rules.registry import AnalyteContext, Rule, all_rules
+from calwarden.rules.replicates import curve_of, replicate_group, replicate_sets
 from calwarden.rules.verdict import (
     AdditionSeries,
     Calibration,
     Finding,
     Flag,
+    ReplicateGroup,
     Result,
     Severity,
     StandardPoint,
@@ -40,6 +43,30 @@ from calwarden.rules.verdict import (
 
 #: Kinds that are not read off the curve one by one: calibration points and addition points.
 _NOT_QUANTITATED = frozenset({Kind.BLANK, Kind.CAL, Kind.ADDITION})
+#: Cause before consequence: the order findings are listed in, by rule id prefix (or whole
+#: id). A failed calibration explains failed checks, a failed check or blank explains the
+#: bracket findings, and those explain the samples' flags; the first failure listed is the
+#: headline (``calwarden status``, the log's ``reason``, the alert subject). Unlisted ids
+#: come last, with the samples.
+FINDING_STAGES: dict[str, int] = {
+    "calibration": 0,
+    "check": 1,
+    "blank": 1,
+    "lcs": 1,
+    "istd": 1,
+    "bracket": 2,
+    "replicate": 3,
+}
+_LAST_STAGE = 3
+
+
+def finding_stage(rule_id: str) -> int:
+    """The stage of a rule's findings in :data:`FINDING_STAGES` (whole id first, then prefix)."""
+    if rule_id in FINDING_STAGES:
+        return FINDING_STAGES[rule_id]
+    return FINDING_STAGES.get(rule_id.split(".", 1)[0], _LAST_STAGE)
+
+
 #: Mandel's test needs this many levels to say anything (ISO 8466-1 asks for at least 5).
 _MANDEL_MIN_LEVELS = 5
 
@@ -68,6 +95,7 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
     calibrations: list[Calibration] = []
     results: list[Result] = []
     additions: list[AdditionSeries] = []
+    replicates: list[ReplicateGroup] = []
     for analyte, rows in by_analyte.items():
         rows.sort(key=lambda r: r.seq)
         judged = _judge_analyte(analyte, tuple(rows), criteria.for_analyte(analyte), rules)
@@ -76,9 +104,12 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
             calibrations.append(judged.calibration)
         results.extend(judged.results)
         additions.extend(judged.additions)
+        replicates.extend(judged.replicates)
 
-    # Stable sort: within one seq the analytes keep the run's order.
+    # Stable sorts: within one seq the analytes keep the run's order, within one stage
+    # the findings keep the analytes' and the rules' order.
     results.sort(key=_seq_of)
+    findings.sort(key=lambda finding: finding_stage(finding.rule))
     failed = any(f.severity is Severity.FAIL for f in findings)
     return Verdict(
         status=Status.FAIL if failed else Status.PASS,
@@ -88,6 +119,8 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
         calibrations=tuple(calibrations),
         results=tuple(results),
         additions=tuple(additions),
+        # By first injection; within one, the analytes keep the run's order.
+        replicates=tuple(sorted(replicates, key=lambda group: group.seqs[0])),
     )
 
 
@@ -101,6 +134,7 @@ class _AnalyteJudgement:
     calibration: Calibration | None
     results: list[Result]
     additions: list[AdditionSeries]
+    replicates: list[ReplicateGroup]
 
 
 def _judge_analyte(
@@ -140,7 +174,9 @@ def _judge_analyte(
         if marks:
             result = _with_flags(result, marks, calibration.range_high if calibration else None)
         results.append(result)
-    return _AnalyteJudgement(findings, calibration, results, list(series.values()))
+    fit_of = curve_of(calibration, rows)
+    replicates = [replicate_group(members, fit_of) for members in replicate_sets(results)]
+    return _AnalyteJudgement(findings, calibration, results, list(series.values()), replicates)
 
 
 def _with_flags(result: Result, marks: Iterable[Flag], top: float | None) -> Result:
@@ -213,8 +249,15 @@ def _calibrate(
         and criteria.model is Model.LINEAR
         and len(set(non_zero)) >= _MANDEL_MIN_LEVELS
     ):
-        mandel = mandel_test(x, y, criteria.mandel_alpha)
-    limits = detection_limits(fit) if fit is not None else None
+        mandel = mandel_test(
+            x,
+            y,
+            criteria.mandel_alpha,
+            _linearity_weighting(criteria),
+            criteria.linearity_reading_rsd_pct,
+        )
+    blanks = [r.signal for r in rows if r.kind is Kind.BLANK]
+    limits = detection_limits(fit, blanks) if fit is not None else None
     return Calibration(
         analyte=analyte,
         unit=unit,
@@ -231,6 +274,15 @@ def _calibrate(
         range_high=max(non_zero) if non_zero else None,
         problem=problem,
     )
+
+
+def _linearity_weighting(criteria: AnalyteCriteria) -> Weighting:
+    """The weighted space of the linearity test: the calibration's, or the variance model's."""
+    if criteria.weighting is not Weighting.NONE:
+        return criteria.weighting
+    if criteria.linearity_variance == "proportional":
+        return Weighting.INVERSE_X_SQUARED
+    return Weighting.NONE
 
 
 def _mixed_basis(rows: Sequence[Reading], *, use_blanks: bool) -> str | None:

@@ -38,6 +38,7 @@ class Flag(StrEnum):
     NOT_QUANTIFIABLE = "not_quantifiable"  # no concentration gives this response
     QC_FAILED = "qc_failed"  # this QC sample (blank, LCS, duplicate, spike) is out of limits
     NOT_JUDGED = "not_judged"  # a QC comparison that could not be made
+    REPLICATES_DISAGREE = "replicates_disagree"  # the injections of one sample scatter too much
 
 
 #: Flags that make a field sample's result unreportable: it goes on the re-run list.
@@ -50,6 +51,7 @@ RERUN_FLAGS = frozenset(
         Flag.NOT_BRACKETED,
         Flag.ISTD_OUT,
         Flag.NOT_QUANTIFIABLE,
+        Flag.REPLICATES_DISAGREE,
     }
 )
 
@@ -92,6 +94,33 @@ class Result:
     unit: str | None
     flags: tuple[Flag, ...] = ()
     suggested_dilution: float | None = None  # only with OVER_RANGE
+
+
+@dataclass(frozen=True, slots=True)
+class ReplicateGroup:
+    """Replicate injections of one sample (same id and kind, one analyte) as one reported result.
+
+    ``concentration`` is read off the curve at the mean response (times the common
+    dilution); ``uncertainty`` is the calibration's for a mean of m readings
+    (:meth:`~rules.calibration.Fit.inverse_uncertainty` with ``replicates=m``).
+    With differing dilutions the concentrations are averaged and ``uncertainty``
+    is ``None``. ``rsd_pct`` is the %RSD of the injections' concentrations.
+    ``flags`` are every injection's flags together. Each injection stays a
+    :class:`Result` of its own.
+    """
+
+    sample_id: str
+    kind: Kind
+    analyte: str
+    seqs: tuple[int, ...]
+    signal: float | None  # mean response
+    measured: float | None
+    concentration: float | None
+    uncertainty: float | None
+    rsd_pct: float | None
+    dilution: float | None  # None when the injections' dilutions differ
+    unit: str | None
+    flags: tuple[Flag, ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -161,6 +190,7 @@ class Verdict:
     results: tuple[Result, ...]
     additions: tuple[AdditionSeries, ...] = ()
     error: str | None = None
+    replicates: tuple[ReplicateGroup, ...] = ()
 
     def reruns(self) -> tuple[Result, ...]:
         """Field-sample results that cannot be reported as they are."""

@@ -210,24 +210,34 @@ def test_header_text_property_no_control_characters_and_capped(text: str, limit:
 
 
 def test_fail_subject_format() -> None:
-    """A fail subject reads '[calwarden] FAIL <instrument> <run>: N failures'."""
-    assert subject(_fail_alert()) == "[calwarden] FAIL ICP-2 run-1204: 3 failures"
+    """A fail subject reads '[calwarden] FAIL <instrument> <run>: <root cause> (N failures)'."""
+    assert subject(_fail_alert()) == (
+        "[calwarden] FAIL ICP-2 run-1204: CCV-2 Zn recovered 82.6 %, limit 90-110 % (3 failures)"
+    )
 
 
 def test_fail_subject_singular_failure() -> None:
     """One failure is 'failure', not 'failures'."""
-    assert subject(_fail_alert(failures=1)).endswith(": 1 failure")
+    assert subject(_fail_alert(failures=1)).endswith(" (1 failure)")
+
+
+def test_fail_subject_without_listed_findings_gives_the_count() -> None:
+    """A fail summary listing no finding says only how many failures there are."""
+    assert subject(_fail_alert(findings=[])) == "[calwarden] FAIL ICP-2 run-1204: 3 failures"
 
 
 def test_fail_subject_does_not_repeat_an_instrument_named_in_the_run() -> None:
     """A run whose name contains the instrument's is not preceded by the instrument again."""
-    alert = _fail_alert(run="ICP-2-20261124-A", failures=5)
+    alert = _fail_alert(run="ICP-2-20261124-A", failures=5, findings=[])
     assert subject(alert) == "[calwarden] FAIL ICP-2-20261124-A: 5 failures"
 
 
 def test_fail_subject_of_the_failing_fixture(failing_alert: dict[str, Any]) -> None:
-    """The failing fixture's subject names its run once and counts its 5 failures."""
-    assert subject(failing_alert) == "[calwarden] FAIL BWL-ICPMS-2-20261124-A: 5 failures"
+    """The failing fixture's subject names its run once, the failed CCV, and 5 failures."""
+    assert subject(failing_alert) == (
+        "[calwarden] FAIL BWL-ICPMS-2-20261124-A: CCV-2 Zn recovered 82.6 %, limit 90–110 % "
+        "(5 failures)"
+    )
 
 
 def test_error_subject_names_inbox_and_path() -> None:

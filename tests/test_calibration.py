@@ -346,6 +346,55 @@ def test_detection_limits_none_without_dof() -> None:
     assert detection_limits(fit_calibration([1.0, 2.0], [1.0, 2.0])) is None
 
 
+def _low_and_high(high: list[float]) -> tuple[list[float], list[float]]:
+    """Standards 0.5–5 plus ``high`` on y = 0.1 + 2x, errors ±0.02·√x alternating (1/x variance)."""
+    x = [0.5, 1.0, 2.0, 5.0, *high]
+    y = [0.1 + 2.0 * v + 0.02 * math.sqrt(v) * (-1) ** i for i, v in enumerate(x)]
+    return x, y
+
+
+def test_weighted_detection_limits_come_from_the_lowest_standard() -> None:
+    """1/x fit: LOD = 3.3·s·sqrt(1/w(x_low))/b1, s the weighted residual SD (formula check)."""
+    x, y = _low_and_high([20.0, 50.0])
+    fit = fit_calibration(x, y, Model.LINEAR, Weighting.INVERSE_X)
+    assert fit.residual_sd is not None
+    raw = [1.0 / v for v in x]
+    sigma_low = fit.residual_sd * math.sqrt((1.0 / raw[0]) * (sum(raw) / len(raw)))
+    limits = detection_limits(fit)
+    assert limits == pytest.approx(
+        (3.3 * sigma_low / fit.coefficients[1], 10 * sigma_low / fit.coefficients[1]), rel=1e-12
+    )
+
+
+def test_weighted_detection_limits_barely_move_when_high_standards_are_added() -> None:
+    """Adding 100 and 500 on top of the same low standards keeps the 1/x LOD within a factor 1.5."""
+    narrow = detection_limits(
+        fit_calibration(*_low_and_high([10.0]), Model.LINEAR, Weighting.INVERSE_X)
+    )
+    wide = detection_limits(
+        fit_calibration(*_low_and_high([10.0, 100.0, 500.0]), Model.LINEAR, Weighting.INVERSE_X)
+    )
+    assert narrow is not None and wide is not None
+    assert 1 / 1.5 < wide[0] / narrow[0] < 1.5
+
+
+def test_weighted_detection_limits_use_blank_replicates_when_present() -> None:
+    """With three or more blank readings, σ is their SD (ICH Q2, SD of the blank)."""
+    fit = fit_calibration(*_low_and_high([20.0]), Model.LINEAR, Weighting.INVERSE_X_SQUARED)
+    blanks = [0.010, 0.014, 0.012, 0.008]
+    sd = float(np.std(blanks, ddof=1))
+    limits = detection_limits(fit, blanks)
+    assert limits == pytest.approx(
+        (3.3 * sd / fit.coefficients[1], 10 * sd / fit.coefficients[1]), rel=1e-12
+    )
+
+
+def test_unweighted_detection_limits_ignore_blank_replicates() -> None:
+    """An unweighted fit keeps the residual SD (ICH Q2's regression-line option), blanks or not."""
+    fit = fit_calibration(A_X, A_Y)
+    assert detection_limits(fit, [0.1, 0.3, 0.2]) == detection_limits(fit)
+
+
 # --- B. Standard addition -------------------------------------------------------------------
 # Miller & Miller ch. 5, silver in photographic waste by AAS. Data [memory]; statistics
 # [computed].
@@ -461,6 +510,39 @@ def test_mandel_not_significant_on_a_line() -> None:
     result = mandel_test(x.tolist(), y.tolist())
     assert result is not None
     assert not result.significant
+
+
+def test_weighted_mandel_equals_statsmodels_wls_f_test() -> None:
+    """1/x² Mandel PG equals statsmodels' WLS F test of the x² term (restricted vs full)."""
+    rng = np.random.default_rng(11)
+    x = np.array([0.0, 1.0, 2.0, 5.0, 10.0, 20.0, 50.0])
+    y = 0.05 + x + rng.normal(0.0, 1.0, x.size) * 0.01 * (0.05 + x)
+    result = mandel_test(x.tolist(), y.tolist(), 0.01, Weighting.INVERSE_X_SQUARED)
+    w = 1.0 / np.maximum(x, 1.0) ** 2
+    full = WLS(y, np.column_stack([np.ones_like(x), x, x * x]), weights=w).fit()
+    line = WLS(y, np.column_stack([np.ones_like(x), x]), weights=w).fit()
+    statistic, _, _ = full.compare_f_test(line)
+    assert result is not None
+    assert result.weighting == "1/x2"
+    assert result.statistic == pytest.approx(float(statistic), rel=1e-9)
+
+
+def test_mandel_with_a_stated_repeatability_uses_a_known_variance() -> None:
+    """A stated 1 % repeatability turns the critical value into F(0.99; 1, ∞) = 6.63."""
+    x = [1.0, 2.0, 5.0, 10.0, 20.0, 50.0]
+    y = [v * (1.0 + 0.005 * (-1) ** i) for i, v in enumerate(x)]
+    result = mandel_test(x, y, 0.01, Weighting.INVERSE_X_SQUARED, reading_rsd_pct=1.0)
+    assert result is not None and result.stated_variance
+    assert result.critical == pytest.approx(6.635, abs=1e-3)
+
+
+def test_mandel_sets_a_stated_repeatability_aside_when_the_standards_scatter_more() -> None:
+    """Standards scattering 10 % against a stated 0.1 % fall back to the estimated s², F(1, N−3)."""
+    x = [1.0, 2.0, 5.0, 10.0, 20.0, 50.0]
+    y = [v * (1.0 + 0.1 * (-1) ** i) for i, v in enumerate(x)]
+    result = mandel_test(x, y, 0.01, Weighting.INVERSE_X_SQUARED, reading_rsd_pct=0.1)
+    assert result is not None and not result.stated_variance
+    assert result.critical == pytest.approx(34.12, abs=5e-3)
 
 
 def test_mandel_none_with_three_points() -> None:
@@ -623,13 +705,47 @@ def test_quadratic_root_without_cancellation() -> None:
     assert fit.invert(fit.predict(3.0)) == pytest.approx(3.0, rel=1e-13)
 
 
-@pytest.mark.parametrize("dof", [1, 2, 3, 4, 5, 7, 10, 18, 37, 100, 1000])
-@pytest.mark.parametrize("alpha", [0.05, 0.01, 0.001])
-def test_f_quantile_matches_scipy(dof: int, alpha: float) -> None:
-    """The closed-form F(1, ν) quantile Mandel's test uses equals scipy.special.fdtri to 1e-10."""
-    from scipy.special import fdtri
+# Upper percentage points of F as printed in statistical tables (e.g. the F tables of
+# NIST/SEMATECH e-Handbook §1.3.6.7.3) [memory]; each to the table's rounding.
+F_TABLE = [
+    (0.95, 1, 1, 161.45, 0.01),
+    (0.95, 1, 3, 10.13, 0.005),
+    (0.95, 1, 5, 6.61, 0.005),
+    (0.95, 1, 10, 4.96, 0.005),
+    (0.95, 1, 30, 4.17, 0.005),
+    (0.95, 1, math.inf, 3.84, 0.005),
+    (0.95, 3, 10, 3.71, 0.005),
+    (0.99, 1, 1, 4052.2, 0.1),
+    (0.99, 1, 3, 34.12, 0.005),
+    (0.99, 1, 4, 21.20, 0.005),
+    (0.99, 1, 10, 10.04, 0.005),
+    (0.99, 1, 37, 7.37, 0.005),
+    (0.99, 1, math.inf, 6.63, 0.005),
+    (0.99, 3, math.inf, 3.78, 0.005),  # χ²(0.99; 3)/3 = 11.345/3
+]
 
-    from calwarden.rules.calibration import f_quantile_one_numerator
 
-    expected = float(fdtri(1.0, float(dof), 1.0 - alpha))
-    assert f_quantile_one_numerator(1.0 - alpha, dof) == pytest.approx(expected, rel=1e-10)
+@pytest.mark.parametrize(("probability", "dof1", "dof2", "table", "tolerance"), F_TABLE)
+def test_f_quantile_matches_published_tables(
+    probability: float, dof1: int, dof2: float, table: float, tolerance: float
+) -> None:
+    """The F quantile Mandel's test uses matches printed F tables [memory] to their rounding."""
+    from calwarden.rules.calibration import f_quantile
+
+    assert f_quantile(probability, dof1, dof2) == pytest.approx(table, abs=tolerance)
+
+
+@pytest.mark.parametrize("dof", [1, 2, 5, 37])
+def test_f_one_numerator_is_t_squared(dof: int) -> None:
+    """F(0.99; 1, ν) equals t(0.995; ν)² (scipy.special.stdtrit), an identity of the two laws."""
+    from calwarden.rules.calibration import f_quantile
+
+    assert f_quantile(0.99, 1, dof) == pytest.approx(float(stdtrit(dof, 0.995)) ** 2, rel=1e-10)
+
+
+def test_f_quantile_refuses_a_probability_outside_zero_one() -> None:
+    """A probability of 1 has no finite quantile: ValueError, not infinity."""
+    from calwarden.rules.calibration import f_quantile
+
+    with pytest.raises(ValueError):
+        f_quantile(1.0, 1, 3)

@@ -156,3 +156,59 @@ def test_fixture_intentions_hold_by_an_independent_numpy_check() -> None:
         check=False,
     )
     assert result.returncode == 0, result.stdout[-2000:] + result.stderr
+
+
+def _check(seq: int, kind: Kind, response: float) -> Reading:
+    return Reading(line=seq, seq=seq, sample_id=f"{kind.value.upper()}-{seq}", kind=kind,
+                   analyte="Zn", response=response, nominal=10.0)  # fmt: skip
+
+
+def test_a_failed_ccv_is_listed_before_the_brackets_it_breaks() -> None:
+    """Root cause first: CCV recovering 83 % is the first failure, its bracket findings follow."""
+    run = _run(
+        _check(20, Kind.ICV, 10150.0),
+        _sample(21, 3000.0),
+        _sample(22, 4000.0),
+        _check(23, Kind.CCV, 8400.0),  # about 83 % of 10 µg/L
+        _sample(24, 5000.0),
+        _check(25, Kind.CCV, 10100.0),
+    )
+    verdict = evaluate(run, build_criteria({}))
+    failures = [f.rule for f in verdict.findings if f.severity is Severity.FAIL]
+    assert failures[0] == "check.recovery"
+    assert "bracket.reportable" in failures[1:]
+
+
+@pytest.mark.parametrize("name", ["bwl-metals-fail.csv", "bwl-lc-istd.csv", "bwl-quadratic.csv"])
+def test_fixture_findings_are_ordered_cause_before_consequence(name: str) -> None:
+    """Every fixture's findings run calibration, checks and blanks, brackets, samples."""
+    from calwarden.daemon.pipeline import judge_file
+    from calwarden.daemon.settings.config import load_config
+    from calwarden.rules.evaluate import finding_stage
+
+    judgement = judge_file(PROJECT / "fixtures" / name, load_config(None))
+    stages = [finding_stage(f.rule) for f in judgement.verdict.findings]
+    assert stages == sorted(stages)
+
+
+def test_replicate_injections_give_one_result_with_the_uncertainty_of_a_mean() -> None:
+    """Three injections of S-9: the curve at the mean response, u of a mean of m = 3 readings."""
+    run = _run(*(Reading(line=s, seq=s, sample_id="S-9", kind=Kind.SAMPLE, analyte="Zn",
+                         response=r, dilution=2.0)
+                 for s, r in ((20, 12200.0), (21, 12500.0), (22, 12000.0))))  # fmt: skip
+    verdict = evaluate(run, build_criteria({}))
+    (group,) = verdict.replicates
+    (calibration,) = verdict.calibrations
+    fit = calibration.fit
+    assert fit is not None and calibration.blank_signal is not None
+    mean_signal = float(np.mean([12200.0, 12500.0, 12000.0])) - calibration.blank_signal
+    at_mean, single = fit.invert(mean_signal), fit.inverse_uncertainty(mean_signal)
+    of_mean = fit.inverse_uncertainty(mean_signal, 3)
+    assert at_mean is not None and single is not None and of_mean is not None
+    assert group.seqs == (20, 21, 22)
+    assert group.concentration == pytest.approx(2.0 * at_mean, rel=1e-12)
+    assert group.uncertainty == pytest.approx(2.0 * of_mean, rel=1e-12)
+    assert of_mean < single
+    values = [r.concentration for r in verdict.results if r.sample_id == "S-9"]
+    assert group.rsd_pct == pytest.approx(100 * np.std(values, ddof=1) / np.mean(values), rel=1e-12)
+    assert len(values) == 3  # each injection is still a result

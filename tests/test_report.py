@@ -67,3 +67,23 @@ def test_daemon_report_lists_control_series_and_pictures() -> None:
     report = render(document)
     assert "BWL-ICPMS-2 CCV Zn 25 µg/L  24      99.8    1.6  baseline" in report
     assert "  bwl-metals-pass.calibration-Zn.png" in report
+
+
+def test_report_shows_replicate_injections_as_one_result(tmp_path: Path) -> None:
+    """A sample injected three times is one line of the replicate table: n, mean, u, %RSD."""
+    base = (Path(__file__).parent / "cases" / "_base.csv").read_text(encoding="utf-8")
+    run = tmp_path / "replicates.csv"
+    run.write_text(
+        base
+        + "9,S-07,sample,Zn,12200,,,,,,,µg/L\n10,S-07,sample,Zn,12500,,,,,,,µg/L\n"
+        + "11,S-07,sample,Zn,12000,,,,,,,µg/L\n12,CCV-1,ccv,Zn,10100,10,,,,,,µg/L\n",
+        encoding="utf-8",
+    )
+    judgement = judge_file(run, load_config(None))
+    (group,) = judgement.document["replicates"]
+    assert group["seqs"] == [9, 10, 11] and group["injections"] == 3
+    assert group["rsd_pct"] < 10
+    report = render(judgement.document)
+    assert "Replicate injections (1)" in report
+    line = next(row for row in report.splitlines() if row.startswith("S-07 "))
+    assert f"{group['rsd_pct']:.1f}" in line and " 3 " in line

@@ -182,7 +182,10 @@ def digest_alert(gathered: Sequence[Mapping[str, Any]], when: str) -> dict[str, 
 
 
 def subject(alert: Mapping[str, Any]) -> str:
-    """``[calwarden] FAIL ICP-2 run-1204: 3 findings``: one line, file text sanitised."""
+    """``[calwarden] FAIL ICP-2 run-1204: CCV-2 Cu recovered 83.0 %, … (3 failures)``: one line.
+
+    File text is sanitised; a fail subject names the root cause, the first failure.
+    """
     kind = str(alert.get("kind"))
     word = _WORDS.get(kind, kind.upper())
     run = str(alert.get("run") or alert.get("path") or "")
@@ -191,7 +194,14 @@ def subject(alert: Mapping[str, Any]) -> str:
     pieces = (run,) if instrument and instrument in run else (instrument, run)
     where = " ".join(header_text(piece) for piece in pieces if piece)
     if kind == "fail":
-        what = f"{where}: {_plural(int(alert.get('failures') or 0), 'failure')}"
+        # The root cause leads (findings are listed cause first, failures first), the
+        # count follows; a long message is cut, never the count.
+        count = _plural(int(alert.get("failures") or 0), "failure")
+        cause = next(
+            (f.get("message") for f in alert.get("findings", []) if f.get("severity") == "fail"),
+            None,
+        )
+        what = f"{where}: {header_text(cause)} ({count})" if cause else f"{where}: {count}"
     elif kind == "error":
         what = f"{header_text(alert.get('inbox'))}/{header_text(alert.get('path'))}: not judged"
     elif kind == "control":
@@ -234,6 +244,7 @@ _WHY = {
     "check_failed": "a bracketing check standard failed",
     "not_bracketed": "no check standard brackets it",
     "istd_out": "its internal standard is out of limits",
+    "replicates_disagree": "its replicate injections disagree",
     "not_quantifiable": "no concentration gives its response",
 }
 

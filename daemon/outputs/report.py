@@ -20,6 +20,7 @@ FLAG_WORDS = {
     "not_bracketed": "not bracketed by check standards",
     "istd_out": "internal standard out of limits",
     "not_quantifiable": "no concentration on the curve gives this response",
+    "replicates_disagree": "its replicate injections disagree",
 }
 _WORD = {"pass": "PASS", "fail": "FAIL", "error": "ERROR"}
 
@@ -150,6 +151,30 @@ def _results(document: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _replicates(document: dict[str, Any]) -> list[str]:
+    """Replicate injections as the one result each sample reports (absent when there are none)."""
+    groups = document.get("replicates") or []
+    if not groups:
+        return []
+    lines = _heading(f"Replicate injections ({len(groups)})")
+    rows = [("sample", "analyte", "n", "mean", "± u", "%RSD", "unit", "flags")]
+    for g in groups:
+        rows.append(
+            (
+                g["sample_id"],
+                g["analyte"],
+                str(len(g["seqs"])),
+                _number(g["concentration"]),
+                _number(g["uncertainty"], 2),
+                "-" if g["rsd_pct"] is None else f"{g['rsd_pct']:.1f}",
+                g.get("unit") or "",
+                " ".join(g["flags"]),
+            )
+        )
+    lines.extend(_table(rows))
+    return lines
+
+
 def _table(rows: Sequence[tuple[str, ...]]) -> list[str]:
     widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
     return [
@@ -219,6 +244,7 @@ def render(document: dict[str, Any], *, full: bool = True) -> str:
     if document["status"] != "error":
         lines += _reruns(document) + _findings(document)
         if full:
-            lines += _calibrations(document) + _results(document) + _charts(document)
+            lines += _calibrations(document) + _replicates(document) + _results(document)
+            lines += _charts(document)
     lines += ["", str(document.get("caution", ""))]
     return "\n".join(lines) + "\n"

@@ -2,7 +2,9 @@
 
 Stable keys (see README, "The verdict JSON"): ``status``, ``run``, ``source``,
 ``calwarden_version``, ``criteria_sha256``, ``findings``, ``calibrations``,
-``results``, ``error``. More keys may be added; none is removed or renamed.
+``results``, ``error``. Added since: ``replicates`` (one entry per sample injected
+more than once: the reported mean, its uncertainty, the %RSD, the injections' seqs).
+More keys may be added; none is removed or renamed.
 """
 
 from __future__ import annotations
@@ -19,6 +21,7 @@ from calwarden.rules.verdict import (
     Calibration,
     Finding,
     Flag,
+    ReplicateGroup,
     Result,
     Severity,
     Verdict,
@@ -118,6 +121,8 @@ def _calibration(calibration: Calibration) -> dict[str, Any]:
                 "critical": _number(calibration.mandel.critical),
                 "alpha": calibration.mandel.alpha,
                 "significant": calibration.mandel.significant,
+                "weighting": calibration.mandel.weighting,
+                "stated_variance": calibration.mandel.stated_variance,
             }
             if calibration.mandel
             else None,
@@ -154,6 +159,24 @@ def _result(result: Result) -> dict[str, Any]:
         "response": _number(result.signal),
         "flags": [flag.value for flag in result.flags],
         "suggested_dilution": _number(result.suggested_dilution),
+    }
+
+
+def _replicate(group: ReplicateGroup) -> dict[str, Any]:
+    return {
+        "sample_id": group.sample_id,
+        "kind": group.kind.value,
+        "analyte": group.analyte,
+        "seqs": list(group.seqs),
+        "injections": len(group.seqs),
+        "concentration": _number(group.concentration),
+        "uncertainty": _number(group.uncertainty),
+        "unit": group.unit,
+        "measured": _number(group.measured),
+        "dilution": _number(group.dilution),
+        "response": _number(group.signal),
+        "rsd_pct": _number(group.rsd_pct),
+        "flags": [flag.value for flag in group.flags],
     }
 
 
@@ -202,6 +225,7 @@ def verdict_to_json(
         "calibrations": {c.analyte: _calibration(c) for c in verdict.calibrations},
         "results": [_result(r) for r in verdict.results] if with_results else [],
         "additions": [_addition(a) for a in verdict.additions],
+        "replicates": [_replicate(g) for g in verdict.replicates],
         "reruns": rerun_list(verdict),
         "error": verdict.error,
     }

@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from calwarden.rules.acceptance.common import number
-from calwarden.rules.calibration import Model
+from calwarden.rules.calibration import MandelResult, Model
 from calwarden.rules.model import Kind
 from calwarden.rules.registry import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Severity
@@ -145,15 +145,31 @@ def calibration_back_calculation(context: AnalyteContext) -> Iterator[Finding]:
 
 @rule("calibration.linearity", "A straight line is not significantly worse than a quadratic")
 def calibration_linearity(context: AnalyteContext) -> Iterator[Finding]:
-    """Mandel's fitting test on a straight-line calibration.
+    """Mandel's fitting test on a straight-line calibration, in the weighted space of its noise.
 
     Why: a curved response fitted with a line biases mid-range results even
     when r² looks fine (ISO 8466-1:1990 §4.1.3, Mandel 1964). Applied to
     ``linear`` fits with at least 5 levels; a warning, since the lab may prefer
-    a narrower range to a quadratic. Settings: ``mandel_alpha`` (0.01).
+    a narrower range to a quadratic. The F test assumes equal variances, which
+    ISO 8466-1 checks first from replicates at both ends of the range; routine
+    runs have none, and reading noise that grows with the response made the
+    unweighted test warn on one straight curve in eight (46 % with a 1/x² fit
+    tested unweighted). So the test runs in the weighted space of the noise:
+    a weighted calibration's own weights; for an unweighted one the variance
+    model ``linearity_variance`` (``proportional``: 1/x² weights, default;
+    ``constant``: the plain test). Generalised least squares makes the weighted
+    problem a homoscedastic one, so PG follows F(1, N − 3) again (Draper &
+    Smith §9.2 [memory]). With only six standards s² has three degrees of
+    freedom and F(0.99; 1, 3) = 34: state the method's validated reading
+    repeatability (``linearity_reading_rsd_pct``) to test against a known
+    variance, F(0.99; 1, ∞) = 6.63, which sees a 6 % bend at the top standard
+    against 1 % noise; a statement the run's residuals contradict (χ² test at
+    1 %) is set aside. Figures: tests/benchmarks/alarms_calibration.py.
+    Settings: ``mandel_alpha`` (0.01), ``linearity_variance`` (proportional),
+    ``linearity_reading_rsd_pct`` (none).
 
-    Warns: a detector saturating at the top standards (PG = 212 > F = 10.0).
-    Passes: a straight response (PG = 0.4).
+    Warns: a detector saturating at the top standards, y = 1000·x − 8·x² (PG = 6.9e5
+    > F = 34.1, in 1/x² space). Passes: the straight response of the case base (PG = 0.09).
     """
     calibration = context.calibration
     if calibration is None or calibration.mandel is None:
@@ -164,11 +180,18 @@ def calibration_linearity(context: AnalyteContext) -> Iterator[Finding]:
             "calibration.linearity",
             Severity.WARN,
             f"{context.analyte} calibration is curved (Mandel PG = {number(mandel.statistic)} > "
-            f"F = {number(mandel.critical)}): consider a quadratic model or a narrower range",
+            f"F = {number(mandel.critical)}, tested {_space(mandel)}): consider a quadratic "
+            "model or a narrower range",
             analyte=context.analyte,
             value=mandel.statistic,
             limit=(None, mandel.critical),
         )
+
+
+def _space(mandel: MandelResult) -> str:
+    """Where the test ran, in a few words: "weighted 1/x2, stated 1 % RSD"."""
+    space = "unweighted" if mandel.weighting == "none" else f"weighted {mandel.weighting}"
+    return f"{space}, stated repeatability" if mandel.stated_variance else space
 
 
 @rule("calibration.rf_rsd", "Average response factors agree with each other")
