@@ -21,7 +21,8 @@ from calwarden.daemon.alerts.sender import (
 from calwarden.daemon.alerts.settings import AlertSettings
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.settings.config import build_config, plan_watch
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
+from calwarden.daemon.stores.database import LEDGER_NAME
+from calwarden.daemon.stores.ledger import Ledger
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 ANALYST = "analyst@brindlewick.example"
@@ -86,8 +87,8 @@ def test_an_outbox_folder_that_cannot_be_written_holds_the_alert_until_it_can(
 ) -> None:
     """A release that fails is logged and done later; the alert is not lost."""
     state = tmp_path / "state"
-    ledger = Ledger(state / LEDGER_NAME)
-    ledger.record_alert(daemon_trouble("observer_restarted", "the folder observer restarted"))
+    ledger = Ledger.open(state / LEDGER_NAME)
+    ledger.alerts.record(daemon_trouble("observer_restarted", "the folder observer restarted"))
     ledger.close()
     (state / OUTBOX_FOLDER).write_text("in the way", encoding="utf-8")
     sender = AlertSender(state, AlertSettings())

@@ -55,7 +55,9 @@ from calwarden.daemon.outputs.pictures import CHARTS_FOLDER, draw_calibration, d
 from calwarden.daemon.outputs.verdict_json import calwarden_version
 from calwarden.daemon.parsing.reader import MAX_FILE_BYTES
 from calwarden.daemon.settings.config import Inbox, WatchPlan
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, LedgerError, SeriesKey
+from calwarden.daemon.stores.database import LEDGER_NAME, LedgerError
+from calwarden.daemon.stores.ledger import Ledger
+from calwarden.daemon.stores.records import SeriesKey
 
 log = structlog.get_logger("calwarden")
 
@@ -171,7 +173,7 @@ class Watcher:
                 f"cannot use the state folder {self.plan.state_dir}: {error}"
             ) from None
         try:
-            ledger = Ledger(self.plan.state_dir / LEDGER_NAME)
+            ledger = Ledger.open(self.plan.state_dir / LEDGER_NAME)
         except LedgerError as error:
             self._lock.release()
             raise StartError(str(error)) from None
@@ -296,9 +298,10 @@ class Watcher:
         try:
             if self._ledger is None:
                 raise LedgerError("the ledger is not open")
-            self._ledger.record_alert(alert)
+            self._ledger.alerts.record(alert)
         except LedgerError as error:
-            log.error("alert_not_recorded", event=event, error=str(error))
+            # Not "event=": that is the log call's own first argument.
+            log.error("alert_not_recorded", alert_event=event, error=str(error))
             emergency_alert(self.plan.state_dir, self.plan.alerts, alert)
             return
         if self.sender is not None:
@@ -356,7 +359,7 @@ class Watcher:
             return
         assert self._ledger is not None
         relative = path.relative_to(inbox.path).as_posix()
-        if self._ledger.unchanged(inbox.name, relative, info.st_size, info.st_mtime_ns):
+        if self._ledger.files.unchanged(inbox.name, relative, info.st_size, info.st_mtime_ns):
             return  # a late event about a file already judged as it is
         self._candidates[path] = _Candidate(inbox, path, info.st_size, info.st_mtime_ns)
         self._schedule(path, self.settings.settle_seconds)
@@ -479,7 +482,9 @@ class Watcher:
             if self._stale_charts:
                 key = next(iter(self._stale_charts))
                 try:
-                    draw_series(self._ledger, control, self.plan.out / CHARTS_FOLDER, (key,))
+                    draw_series(
+                        self._ledger.control, control, self.plan.out / CHARTS_FOLDER, (key,)
+                    )
                 finally:
                     self._stale_charts.pop(key, None)  # after drawing: wait_pictures sees it
         except LedgerError:
@@ -489,11 +494,11 @@ class Watcher:
 
     def _next_run_to_draw(self) -> None:
         assert self._ledger is not None
-        pending = self._ledger.pictures_pending(limit=_PICTURE_BACKLOG + 1)
+        pending = self._ledger.pictures.pending(limit=_PICTURE_BACKLOG + 1)
         if len(pending) > _PICTURE_BACKLOG:
             # A backlog of old files (a first start on a full export folder) would keep
             # the daemon drawing for hours: only the newest runs get pictures.
-            skipped = self._ledger.skip_old_pictures(_PICTURE_BACKLOG)
+            skipped = self._ledger.pictures.skip_old(_PICTURE_BACKLOG)
             log.info("pictures_skipped", runs=skipped, kept=_PICTURE_BACKLOG)
             pending = pending[:_PICTURE_BACKLOG]
         if not pending:
@@ -501,7 +506,7 @@ class Watcher:
             return
         evaluation_id, inbox_name, stem = pending[0]
         inbox = next((i for i in self.plan.inboxes if i.name == inbox_name), None)
-        document = json.loads(self._ledger.outputs_of(evaluation_id)[0])
+        document = json.loads(self._ledger.files.outputs_of(evaluation_id)[0])
         analytes = list(document.get("calibrations") or {}) if inbox is not None else []
         pure = PurePosixPath(stem)
         folder = (inbox.out_dir if inbox is not None else self.plan.out) / pure.parent
@@ -518,7 +523,7 @@ class Watcher:
             if not drawing.analytes:
                 # Marked even when drawing failed (and said so): never retried in a loop.
                 self._drawing = None
-                self._ledger.mark_pictures_drawn(drawing.evaluation_id)
+                self._ledger.pictures.mark_drawn(drawing.evaluation_id)
 
     # ------------------------------------------------------------------ scans
 
@@ -559,7 +564,7 @@ class Watcher:
         if inbox.name in self._unreachable and folder == inbox.path:
             log.info("inbox_reachable", inbox=inbox.name, path=str(folder))
             self._unreachable.discard(inbox.name)
-        known = self._ledger.seen_in(inbox.name)
+        known = self._ledger.files.seen_in(inbox.name)
         new: list[tuple[int, Path, int]] = []
         for entry in entries:
             path = Path(entry.path)
