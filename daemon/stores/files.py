@@ -53,11 +53,6 @@ class FileStore:
 
     # ------------------------------------------------------------------ queries
 
-    def unchanged(self, inbox: str, path: str, size: int, mtime_ns: int) -> bool:
-        """Whether the file was recorded with exactly this size and modification time."""
-        seen = self.seen(inbox, path)
-        return seen is not None and (seen.size, seen.mtime_ns) == (size, mtime_ns)
-
     def seen_in(self, inbox: str) -> dict[str, tuple[int, int]]:
         """Size and mtime of every file recorded in an inbox (one query for a whole rescan)."""
         rows = self._db.rows("SELECT path, size, mtime_ns FROM seen WHERE inbox = ?", (inbox,))
