@@ -19,9 +19,10 @@ and does what the decisions say:
 * delete events are ignored: the raw data belongs to the lab, and a verdict
   stays when its file goes.
 
-The worker writes the ledger's evaluations and control log; the alert sender
-(:mod:`daemon.alert_sender`, its own thread and connection) writes only its
-outbox tables. A fault the worker cannot recover from (the ledger or the output
+The worker is handed the stores it writes (a :class:`~calwarden.daemon.stores.ledger.Ledger`:
+files and evaluations, the control log, pictures, new alerts); the alert sender
+(:mod:`calwarden.daemon.alerts.sender`, its own thread and connection) writes only
+its outbox. A fault the worker cannot recover from (the ledger or the output
 folder unwritable, the disk full) stops it with :attr:`Watcher.fault` set, after
 an alert saying so; the command line then exits non-zero so that the service
 manager restarts the daemon.
