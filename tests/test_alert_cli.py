@@ -13,7 +13,8 @@ from mail_server import Recorder, free_port
 from calwarden.daemon.alerts.sender import OUTBOX_FOLDER, AlertSender
 from calwarden.daemon.alerts.settings import AlertSettings
 from calwarden.daemon.cli.main import main
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
+from calwarden.daemon.stores.database import LEDGER_NAME, Database
+from calwarden.daemon.stores.ledger import Ledger
 from calwarden.daemon.stores.outbox import Outbox
 
 ANALYST = "analyst@brindlewick.example"
@@ -92,15 +93,15 @@ def test_alert_test_with_a_missing_password_variable_exits_2_naming_it(
 def test_a_version_1_ledger_gains_the_outbox_and_keeps_its_records(tmp_path: Path) -> None:
     """Opening a ledger made before the outbox adds its tables and sets schema 2."""
     path = tmp_path / LEDGER_NAME
-    Ledger(path).close()
+    Ledger.open(path).close()
     with sqlite3.connect(path) as db:
         db.execute("DROP TABLE deliveries")
         db.execute("DROP TABLE alerts")
         db.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
-    upgraded = Outbox(path)
+    upgraded = Database(path)
     try:
         assert upgraded.meta("schema_version") == "2"
-        assert upgraded.outbox_counts().files == 0
+        assert Outbox(upgraded).outbox_counts().files == 0
     finally:
         upgraded.close()
 
@@ -108,7 +109,7 @@ def test_a_version_1_ledger_gains_the_outbox_and_keeps_its_records(tmp_path: Pat
 def test_the_daily_summary_counts_the_day_once(tmp_path: Path) -> None:
     """Past its time of day, the sender writes one summary; a second pass adds none."""
     state = tmp_path / "state"
-    Ledger(state / LEDGER_NAME).close()
+    Ledger.open(state / LEDGER_NAME).close()
     noon = datetime.now().astimezone().replace(hour=12, minute=0, second=0, microsecond=0)
     settings = AlertSettings.model_validate({"daily_summary": {"enabled": True, "at": "07:00"}})
     sender = AlertSender(state, settings, clock=noon.timestamp)

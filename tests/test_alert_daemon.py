@@ -46,7 +46,9 @@ from calwarden.daemon.control_log.log import ControlSettings
 from calwarden.daemon.intake.accept import Intake, Outcome
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, NewEvaluation
+from calwarden.daemon.stores.database import LEDGER_NAME
+from calwarden.daemon.stores.ledger import Ledger
+from calwarden.daemon.stores.records import NewEvaluation
 
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
@@ -450,7 +452,10 @@ def test_the_same_file_version_judged_twice_raises_one_alert(
 
     sha256 = hashlib.sha256(data).hexdigest()
     ledger_path = plan.state_dir / LEDGER_NAME
-    ledgers = [RecordingLedger(ledger_path), RecordingLedger(tmp_path / "fresh" / LEDGER_NAME)]
+    ledgers = [
+        RecordingLedger.open(ledger_path),
+        RecordingLedger.open(tmp_path / "fresh" / LEDGER_NAME),
+    ]
     try:
         for ledger in ledgers:  # the second: the ledger as it was before the first commit
             Intake(ledger, plan.inboxes, plan.alerts).process(

@@ -28,7 +28,7 @@ from calwarden.daemon.alerts.sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
 from calwarden.daemon.cli.status import status_report
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
-from calwarden.daemon.stores.ledger import LEDGER_NAME
+from calwarden.daemon.stores.database import LEDGER_NAME, Database
 from calwarden.daemon.stores.outbox import Outbox, OutboxCounts
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -158,11 +158,12 @@ def wait_event(events: Events, name: str, count: int = 1) -> Events:
 
 def outbox_state(plan: WatchPlan) -> tuple[OutboxCounts, list[tuple[str, str, str, str, int]]]:
     """The outbox's counts and its problem deliveries, read from the ledger file."""
-    outbox = Outbox(plan.state_dir / LEDGER_NAME, read_only=True)
+    database = Database(plan.state_dir / LEDGER_NAME, read_only=True)
     try:
+        outbox = Outbox(database)
         return outbox.outbox_counts(), outbox.problems()
     finally:
-        outbox.close()
+        database.close()
 
 
 def drop_failing_run(inbox: Path, data: bytes = FAILING, name: str = "run.csv") -> None:

@@ -101,3 +101,20 @@ def test_every_folder_is_an_installed_package() -> None:
         for init in (PROJECT / top).rglob("__init__.py")
     }
     assert listed == folders
+
+
+#: The one module that knows the ledger's engine (SQLite); see DEVELOPERS.md.
+ENGINE_MODULE = PROJECT / "daemon" / "stores" / "database.py"
+
+
+@pytest.mark.parametrize(
+    "path",
+    sorted((PROJECT / "daemon").rglob("*.py")),
+    ids=lambda p: str(p.relative_to(PROJECT)),
+)
+def test_only_the_engine_module_imports_the_database_driver(path: Path) -> None:
+    """No daemon module but daemon/stores/database.py imports sqlite3 (or another driver)."""
+    if path == ENGINE_MODULE:
+        return
+    imported = _imported(path, ast.parse(path.read_text(encoding="utf-8")))
+    assert not (imported & {"sqlite3", "psycopg"})

@@ -428,7 +428,7 @@ def test_a_wide_range_is_drawn_on_log_axes() -> None:
 def test_dot_names_never_leave_the_charts_folder(name: str, tmp_path: Path) -> None:
     """An instrument or analyte named `.` or `..` gets a folder of its own inside charts/."""
     from calwarden.daemon.outputs.pictures import chart_path
-    from calwarden.daemon.stores.ledger import SeriesKey
+    from calwarden.daemon.stores.records import SeriesKey
 
     charts = tmp_path / "charts"
     path = chart_path(charts, SeriesKey(name, name, "CCV", "1"))

@@ -30,7 +30,9 @@ from calwarden.daemon.intake.accept import Intake, Outcome
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.pipeline import judge_file
 from calwarden.daemon.settings.config import AppConfig, build_config, plan_watch
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, SeriesKey
+from calwarden.daemon.stores.database import LEDGER_NAME
+from calwarden.daemon.stores.ledger import Ledger
+from calwarden.daemon.stores.records import SeriesKey
 from calwarden.rules.control_points import ControlObservation, control_observations
 from calwarden.rules.errors import ConfigError
 
@@ -110,7 +112,7 @@ class Lab:
         self.plan = plan_watch(config, inbox=root / "inbox", out=root / "out", settle_seconds=0.1)
         self.inbox = self.plan.inboxes[0]
         self.ledger_path = self.plan.state_dir / LEDGER_NAME
-        self.ledger = Ledger(self.ledger_path)
+        self.ledger = Ledger.open(self.ledger_path)
         self.intake = Intake(self.ledger, self.plan.inboxes)
 
     def judge(self, name: str, data: bytes) -> Outcome:
@@ -200,7 +202,7 @@ def test_recoveries_equal_found_concentration_over_nominal_in_the_verdict(
             result["kind"].upper(),
             f"{nominal[(result['analyte'], result['seq'])]:g} µg/L",
         )
-        (point,) = [p for p in one.ledger.series_points(key) if p.seq == result["seq"]]
+        (point,) = [p for p in one.ledger.control.series_points(key) if p.seq == result["seq"]]
         expected = 100.0 * result["concentration"] / nominal[(result["analyte"], result["seq"])]
         assert point.value == pytest.approx(expected, rel=1e-12)
         assert point.sample_id == result["sample_id"] and point.unit == "%"
@@ -237,11 +239,11 @@ def test_one_slope_per_analyte_equal_to_the_fits_linear_coefficient(
     one = lab()
     document = verdict(one.judge("run.csv", metals_run("RUN-A")))
     for analyte in ANALYTES:
-        (point,) = one.ledger.series_points(SeriesKey(INSTRUMENT, analyte, "slope", ""))
+        (point,) = one.ledger.control.series_points(SeriesKey(INSTRUMENT, analyte, "slope", ""))
         coefficients = document["calibrations"][analyte]["coefficients"]
         assert point.value == pytest.approx(coefficients[1], rel=1e-12)
         assert point.unit == "response per µg/L"
-    slopes = [k for k in one.ledger.series_keys() if k.kind == "slope"]
+    slopes = [k for k in one.ledger.control.series_keys() if k.kind == "slope"]
     assert sorted(k.analyte for k in slopes) == sorted(ANALYTES)
 
 
@@ -303,7 +305,7 @@ def test_same_file_seen_again_adds_no_points(lab: Callable[..., Lab]) -> None:
     one.reopen()
     assert one.judge("run.csv", data).status == "unchanged"
     assert point_count(one.ledger_path) == before == 20
-    assert len(one.ledger.series_points(ZN_CCV)) == 2
+    assert len(one.ledger.control.series_points(ZN_CCV)) == 2
 
 
 def test_new_version_supersedes_the_earlier_versions_points(lab: Callable[..., Lab]) -> None:
@@ -313,9 +315,12 @@ def test_new_version_supersedes_the_earlier_versions_points(lab: Callable[..., L
     one.judge("run.csv", first)
     outcome = one.judge("run.csv", second)
     assert outcome.version == 2
-    values = [p.value for p in one.ledger.series_points(ZN_CCV)]
+    values = [p.value for p in one.ledger.control.series_points(ZN_CCV)]
     assert values == pytest.approx(zn_ccv_values(second), rel=1e-12)
-    assert sum(len(one.ledger.series_points(k)) for k in one.ledger.series_keys()) == 20
+    assert (
+        sum(len(one.ledger.control.series_points(k)) for k in one.ledger.control.series_keys())
+        == 20
+    )
 
 
 def test_version_reverted_to_earlier_content_has_its_points(lab: Callable[..., Lab]) -> None:
@@ -325,7 +330,7 @@ def test_version_reverted_to_earlier_content_has_its_points(lab: Callable[..., L
     one.judge("run.csv", first)
     one.judge("run.csv", second)
     assert one.judge("run.csv", first).version == 3
-    values = [p.value for p in one.ledger.series_points(ZN_CCV)]
+    values = [p.value for p in one.ledger.control.series_points(ZN_CCV)]
     assert values == pytest.approx(zn_ccv_values(first), rel=1e-12)
 
 
@@ -337,11 +342,11 @@ def test_no_limits_before_baseline_points(lab: Callable[..., Lab]) -> None:
     one = lab({"baseline_points": 6, "baseline_runs": 1})
     runs = varied_runs(3, seed=1)
     one.judge("a.csv", runs[0])
-    assert one.ledger.active_limits(ZN_CCV) is None
+    assert one.ledger.control.active_limits(ZN_CCV) is None
     one.judge("b.csv", runs[1])
-    assert one.ledger.active_limits(ZN_CCV) is None  # 4 points
+    assert one.ledger.control.active_limits(ZN_CCV) is None  # 4 points
     one.judge("c.csv", runs[2])
-    limits = one.ledger.active_limits(ZN_CCV)
+    limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None and limits.n == 6
 
 
@@ -351,9 +356,9 @@ def test_no_limits_before_baseline_runs(lab: Callable[..., Lab]) -> None:
     runs = varied_runs(3, seed=2)
     one.judge("a.csv", runs[0])
     one.judge("b.csv", runs[1])
-    assert one.ledger.active_limits(ZN_CCV) is None
+    assert one.ledger.control.active_limits(ZN_CCV) is None
     one.judge("c.csv", runs[2])
-    limits = one.ledger.active_limits(ZN_CCV)
+    limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None
     assert limits.n == 5  # the shortest start from 3 runs: 2 + 2 + run 3's CCV-1
 
@@ -365,7 +370,7 @@ def test_baseline_is_mean_and_sample_sd_of_its_points(lab: Callable[..., Lab]) -
     values = np.array([v for data in runs for v in zn_ccv_values(data)])
     assert np.all(np.abs(values - values.mean()) <= 3 * values.std(ddof=1))  # none excluded
     outcomes = one.judge_runs(runs)
-    limits = one.ledger.active_limits(ZN_CCV)
+    limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None
     assert (limits.source, limits.n) == ("baseline", 4)
     assert limits.centre == pytest.approx(values.mean(), rel=1e-12)
@@ -392,7 +397,7 @@ def test_baseline_leaves_out_a_point_beyond_3_sd_once(lab: Callable[..., Lab]) -
     kept = np.delete(values, 7)
     outcomes = one.judge_runs(runs)
     assert outcomes[3].status == "pass"  # the outlier met its own run's criteria
-    limits = one.ledger.active_limits(ZN_CCV)
+    limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None and limits.n == 11
     assert limits.centre == pytest.approx(kept.mean(), rel=1e-12)
     assert limits.sd == pytest.approx(kept.std(ddof=1), rel=1e-9)
@@ -402,12 +407,12 @@ def test_baseline_is_locked_once_set(lab: Callable[..., Lab]) -> None:
     """Points logged after the baseline was set leave its limits as they were."""
     one = lab({"baseline_points": 4, "baseline_runs": 2})
     one.judge_runs(varied_runs(2, seed=5))
-    set_first = one.ledger.active_limits(ZN_CCV)
+    set_first = one.ledger.control.active_limits(ZN_CCV)
     assert set_first is not None
     shifted = [metals_run(f"LATER-{i}", zn_ccv(1.01 + i / 500, 1.02)) for i in range(3)]
     one.judge_runs(shifted, prefix="later")
-    assert one.ledger.limits_history(ZN_CCV) == [set_first]
-    assert len(one.ledger.series_points(ZN_CCV)) == 10
+    assert one.ledger.control.limits_history(ZN_CCV) == [set_first]
+    assert len(one.ledger.control.series_points(ZN_CCV)) == 10
 
 
 def test_point_failing_its_own_run_is_never_in_a_baseline(lab: Callable[..., Lab]) -> None:
@@ -420,9 +425,9 @@ def test_point_failing_its_own_run_is_never_in_a_baseline(lab: Callable[..., Lab
     values = [zn_ccv_values(data) for data in runs]
     outcomes = one.judge_runs(runs)
     assert outcomes[0].status == "fail"
-    logged = one.ledger.series_points(ZN_CCV)
+    logged = one.ledger.control.series_points(ZN_CCV)
     assert [p.accepted for p in logged] == [True, False, True, True, True, True]
-    limits = one.ledger.active_limits(ZN_CCV)
+    limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None and limits.n == 4
     used = np.array([values[0][0], values[1][0], values[1][1], values[2][0]])
     assert limits.centre == pytest.approx(used.mean(), rel=1e-12)
@@ -434,8 +439,8 @@ def test_fixed_limits_are_used_instead_of_a_baseline(lab: Callable[..., Lab]) ->
     fixed = {"analyte": "zn", "kind": "CCV", "centre": 100.0, "sd": 2.5}
     one = lab({"baseline_points": 4, "baseline_runs": 2, "fixed": [fixed]})
     outcomes = one.judge_runs(varied_runs(3, seed=7))
-    assert one.ledger.active_limits(ZN_CCV) is None
-    assert len(one.ledger.series_points(ZN_CCV, accepted_only=True)) == 6
+    assert one.ledger.control.active_limits(ZN_CCV) is None
+    assert len(one.ledger.control.series_points(ZN_CCV, accepted_only=True)) == 6
     (summary,) = [
         s
         for s in verdict(outcomes[-1])["control_charts"]
@@ -450,7 +455,7 @@ def test_fixed_limits_are_used_instead_of_a_baseline(lab: Callable[..., Lab]) ->
 def beyond_3_sd_run(one: Lab) -> tuple[Outcome, float]:
     """Set a baseline from two runs, then judge a run whose CCV-2 Zn is far above it; its z."""
     one.judge_runs(varied_runs(2, seed=8))
-    limits = one.ledger.active_limits(ZN_CCV)
+    limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None
     data = metals_run("RUN-HIGH", zn_ccv(1.0, 1.04))
     value = zn_ccv_values(data)[1]
@@ -470,7 +475,7 @@ def test_ccv_beyond_3_sd_fails_the_run(lab: Callable[..., Lab]) -> None:
     assert (finding["sample_id"], finding["seq"]) == (CCV_2, 28)
     assert finding["value"] == pytest.approx(z, abs=1e-4)
     assert document["status"] == "fail" and outcome.status == "fail"
-    (evaluation,) = one.ledger.latest()
+    (evaluation,) = one.ledger.files.latest()
     assert evaluation.outcome == "fail"
 
 
@@ -531,7 +536,9 @@ def test_istd_series_are_not_judged_by_default(lab: Callable[..., Lab]) -> None:
     assert control_findings(document) == []
     assert document["status"] == "pass"
     istd = SeriesKey("BWL-LCMS-1", "atrazine-d5", "ISTD", "atrazine-d5")
-    assert len(one.ledger.series_points(istd)) == 37  # logged all the same, one per injection
+    assert (
+        len(one.ledger.control.series_points(istd)) == 37
+    )  # logged all the same, one per injection
 
 
 def test_istd_series_are_judged_when_kinds_lists_them(lab: Callable[..., Lab]) -> None:
@@ -573,9 +580,9 @@ def test_control_finding_through_the_watcher(tmp_path: Path) -> None:
     (outcome,) = outcomes
     assert outcome.status == "fail" and ZN_CCV in outcome.series
     assert "control.1-3s" in {f["rule"] for f in control_findings(verdict(outcome))}
-    ledger = Ledger(plan.state_dir / LEDGER_NAME, read_only=True)
+    ledger = Ledger.open(plan.state_dir / LEDGER_NAME, read_only=True)
     try:
-        assert len(ledger.series_points(ZN_CCV)) == 2
+        assert len(ledger.control.series_points(ZN_CCV)) == 2
     finally:
         ledger.close()
 
@@ -591,7 +598,7 @@ def test_disabled_control_logs_nothing_and_adds_no_findings(lab: Callable[..., L
     assert document["status"] == "pass" and control_findings(document) == []
     assert "control_charts" not in document
     assert outcome.series == ()
-    assert point_count(one.ledger_path) == 0 and one.ledger.series_keys() == []
+    assert point_count(one.ledger_path) == 0 and one.ledger.control.series_keys() == []
 
 
 def test_unknown_rule_is_a_config_error_naming_it() -> None:
@@ -625,9 +632,9 @@ def test_export_writes_a_header_and_one_row_per_point(
     assert len(lines) - 1 == point_count(one.ledger_path) == 40
     rows = [dict(zip(lines[0], line, strict=True)) for line in lines[1:]]
     zn = [r for r in rows if (r["analyte"], r["kind"]) == ("Zn", "CCV")]
-    limits = one.ledger.active_limits(ZN_CCV)
+    limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None
-    for row, point in zip(zn, one.ledger.series_points(ZN_CCV), strict=True):
+    for row, point in zip(zn, one.ledger.control.series_points(ZN_CCV), strict=True):
         assert float(row["value"]) == point.value
         assert float(row["z"]) == pytest.approx((point.value - limits.centre) / limits.sd, abs=1e-4)
 
@@ -681,7 +688,7 @@ def test_baseline_command_sets_new_limits_and_keeps_the_old(
     control = {"baseline_points": 4, "baseline_runs": 2}
     one = lab(control)
     one.judge_runs(varied_runs(2, seed=11))
-    earlier = one.ledger.active_limits(ZN_CCV)
+    earlier = one.ledger.control.active_limits(ZN_CCV)
     assert earlier is not None
     recent = varied_runs(2, seed=12, sd=0.01)
     one.judge_runs(recent, prefix="recent")
@@ -689,7 +696,7 @@ def test_baseline_command_sets_new_limits_and_keeps_the_old(
     config.write_text("control:\n  baseline_points: 4\n  baseline_runs: 2\n", encoding="utf-8")
     argv = ["chart", "baseline", "--out", str(one.plan.out), "--config", str(config)]
     assert main([*argv, "--analyte", "Zn", "--kind", "CCV"]) == 0
-    history = one.ledger.limits_history(ZN_CCV)
+    history = one.ledger.control.limits_history(ZN_CCV)
     assert len(history) == 2
     assert [h.active for h in history] == [False, True]
     assert (history[0].centre, history[0].sd) == (earlier.centre, earlier.sd)
@@ -697,7 +704,7 @@ def test_baseline_command_sets_new_limits_and_keeps_the_old(
     assert history[1].n == 4 and history[1].source == "baseline"
     assert history[1].centre == pytest.approx(latest.mean(), rel=1e-12)
     assert history[1].sd == pytest.approx(latest.std(ddof=1), rel=1e-9)
-    assert one.ledger.active_limits(ZN_CCV) == history[1]
+    assert one.ledger.control.active_limits(ZN_CCV) == history[1]
 
 
 def _drifting_lab(lab: Callable[..., Lab], ewma: bool) -> list[Outcome]:
@@ -729,9 +736,9 @@ def test_kept_series_counts_equal_the_points(lab: Callable[..., Lab]) -> None:
     one.judge("a.csv", first)  # back to the first content
     one.judge("b.csv", second)  # a duplicate of a.csv's second version
     one.judge("c.csv", first)  # a duplicate of a.csv
-    for key in one.ledger.series_keys():
-        points = one.ledger.series_points(key)
-        assert one.ledger.series_size(key) == (len(points), sum(p.accepted for p in points))
+    for key in one.ledger.control.series_keys():
+        points = one.ledger.control.series_points(key)
+        assert one.ledger.control.series_size(key) == (len(points), sum(p.accepted for p in points))
 
 
 def test_chart_draws_the_chosen_series_as_png(

@@ -19,7 +19,8 @@ from calwarden.daemon.cli.status import status_report
 from calwarden.daemon.intake.accept import Intake, Outcome
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.settings.config import AppConfig, Inbox, WatchPlan, plan_watch
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
+from calwarden.daemon.stores.database import LEDGER_NAME
+from calwarden.daemon.stores.ledger import Ledger
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 PASSING = (FIXTURES / "bwl-metals-pass.csv").read_bytes()
@@ -80,7 +81,7 @@ def drop_week(plan: WatchPlan, run: Run) -> None:
 
 
 def reader(plan: WatchPlan) -> Ledger:
-    return Ledger(plan.state_dir / LEDGER_NAME, read_only=True)
+    return Ledger.open(plan.state_dir / LEDGER_NAME, read_only=True)
 
 
 # --------------------------------------------------------------------------- the ledger file
@@ -93,8 +94,8 @@ def test_ledger_passes_integrity_check_after_a_run(plan: WatchPlan, running: Run
     assert running.watcher.wait(DEADLINE)
     ledger = reader(plan)
     try:
-        assert ledger.integrity() == "ok"
-        assert ledger.counts() == {"pass": 1, "fail": 2, "error": 1, "duplicate": 1}
+        assert ledger.database.integrity() == "ok"
+        assert ledger.files.counts() == {"pass": 1, "fail": 2, "error": 1, "duplicate": 1}
     finally:
         ledger.close()
 
@@ -107,8 +108,8 @@ def test_read_only_ledger_sees_counts_while_the_daemon_writes(
     assert not running.watcher.wait(0)  # still running, its connection open
     ledger = reader(plan)
     try:
-        assert ledger.counts() == {"pass": 1, "fail": 2, "error": 1, "duplicate": 1}
-        (last,) = ledger.latest()
+        assert ledger.files.counts() == {"pass": 1, "fail": 2, "error": 1, "duplicate": 1}
+        (last,) = ledger.files.latest()
         assert (last.path, last.version, last.outcome) == ("wednesday.csv", 2, "fail")
     finally:
         ledger.close()
@@ -155,7 +156,7 @@ def test_status_report_reads_the_ledger_after_the_daemon_stopped(
 @pytest.fixture
 def intake(plan: WatchPlan) -> Iterator[Intake]:
     """The intake with its own writing ledger connection (no watcher running)."""
-    ledger = Ledger(plan.state_dir / LEDGER_NAME)
+    ledger = Ledger.open(plan.state_dir / LEDGER_NAME)
     try:
         yield Intake(ledger, plan.inboxes)
     finally:
@@ -175,8 +176,8 @@ def test_same_content_at_the_same_path_is_unchanged(plan: WatchPlan, intake: Int
     inbox = plan.inboxes[0]
     assert feed(intake, inbox, "run.csv", PASSING).status == "pass"
     assert feed(intake, inbox, "run.csv", PASSING).status == "unchanged"
-    assert intake.ledger.counts() == {"pass": 1, "fail": 0, "error": 0, "duplicate": 0}
-    seen = intake.ledger.seen(inbox.name, "run.csv")
+    assert intake.ledger.files.counts() == {"pass": 1, "fail": 0, "error": 0, "duplicate": 0}
+    seen = intake.ledger.files.seen(inbox.name, "run.csv")
     assert seen is not None and seen.sha256 == sha256(PASSING)
 
 
@@ -185,8 +186,8 @@ def test_duplicate_row_points_at_the_judged_file(plan: WatchPlan, intake: Intake
     inbox = plan.inboxes[0]
     feed(intake, inbox, "run.csv", FAILING)
     feed(intake, inbox, "copy.csv", FAILING)
-    (original,) = intake.ledger.latest(outcome="fail")
-    (duplicate,) = intake.ledger.latest(outcome="duplicate")
+    (original,) = intake.ledger.files.latest(outcome="fail")
+    (duplicate,) = intake.ledger.files.latest(outcome="duplicate")
     assert duplicate.duplicate_of == original.id
     assert (duplicate.path, duplicate.run) == ("copy.csv", original.run)
 
@@ -220,9 +221,9 @@ def test_file_rewritten_with_another_files_content_has_a_current_verdict(
 
 def test_only_the_newest_runs_keep_pending_pictures(tmp_path: Path) -> None:
     """After a backlog, all but the newest N judged runs are marked as not to be drawn."""
-    from calwarden.daemon.stores.ledger import NewEvaluation
+    from calwarden.daemon.stores.records import NewEvaluation
 
-    ledger = Ledger(tmp_path / LEDGER_NAME)
+    ledger = Ledger.open(tmp_path / LEDGER_NAME)
     try:
         for number in range(8):
             ledger.record_evaluation(
@@ -248,8 +249,8 @@ def test_only_the_newest_runs_keep_pending_pictures(tmp_path: Path) -> None:
                     flagged=None,
                 )
             )
-        assert ledger.skip_old_pictures(3) == 5
-        assert [stem for _, _, stem in ledger.pictures_pending(limit=10)] == [
+        assert ledger.pictures.skip_old(3) == 5
+        assert [stem for _, _, stem in ledger.pictures.pending(limit=10)] == [
             "run-7",
             "run-6",
             "run-5",

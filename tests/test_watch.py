@@ -23,7 +23,8 @@ from calwarden.daemon.intake.accept import Outcome
 from calwarden.daemon.intake.watcher import StartError, Watcher
 from calwarden.daemon.outputs.files import STEM_LIMIT
 from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
+from calwarden.daemon.stores.database import LEDGER_NAME
+from calwarden.daemon.stores.ledger import Ledger
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 PASSING = (FIXTURES / "bwl-metals-pass.csv").read_bytes()
@@ -102,7 +103,7 @@ def named(events: list[dict[str, Any]], name: str) -> list[dict[str, Any]]:
 
 
 def open_ledger(plan: WatchPlan) -> Ledger:
-    return Ledger(plan.state_dir / LEDGER_NAME, read_only=True)
+    return Ledger.open(plan.state_dir / LEDGER_NAME, read_only=True)
 
 
 # --------------------------------------------------------------------------- settling
@@ -161,7 +162,7 @@ def test_temporary_name_renamed_into_place_is_judged_by_its_new_name(
     assert {p.name for p in out.iterdir()} == expected
     ledger = open_ledger(plan)
     try:
-        assert ledger.seen(plan.inboxes[0].name, temporary) is None
+        assert ledger.files.seen(plan.inboxes[0].name, temporary) is None
     finally:
         ledger.close()
 
@@ -200,7 +201,7 @@ def test_burst_of_500_files_gives_500_verdicts(
     assert len(list(out.glob("*.verdict.json"))) == 500
     ledger = open_ledger(plan)
     try:
-        counts = ledger.counts()
+        counts = ledger.files.counts()
     finally:
         ledger.close()
     assert counts == {"pass": 0, "fail": 500, "error": 0, "duplicate": 0}
@@ -228,7 +229,7 @@ def test_same_content_under_a_new_name_is_a_duplicate(
     assert len(named(events, "file_evaluated")) == 1
     ledger = open_ledger(plan)
     try:
-        (row,) = ledger.latest(outcome="duplicate")
+        (row,) = ledger.files.latest(outcome="duplicate")
     finally:
         ledger.close()
     assert (row.path, row.sha256) == ("run-copy.csv", sha256(FAILING))
@@ -349,7 +350,7 @@ def test_deleting_a_judged_file_keeps_its_verdict(
     assert [e["path"] for e in events[count:] if "path" in e] == ["sentinel.csv"]
     ledger = open_ledger(plan)
     try:
-        assert ledger.counts()["pass"] == 1
+        assert ledger.files.counts()["pass"] == 1
     finally:
         ledger.close()
 

@@ -28,7 +28,7 @@ from typing import Any
 
 from calwarden.daemon.control_log.log import series_name
 from calwarden.daemon.outputs.verdict_json import CAUTION
-from calwarden.daemon.stores.ledger import SeriesKey
+from calwarden.daemon.stores.records import SeriesKey
 
 #: How much of one piece of file text may go into a header.
 HEADER_PIECE_LIMIT = 80

@@ -1,8 +1,9 @@
 """The alert sender: a thread that takes alerts from the outbox and delivers them.
 
-The outbox is the ledger (see :mod:`daemon.outbox`); the sender has its own
-connection to it, in its own thread, so that a slow or absent mail server
-never holds up a verdict. Each cycle it
+The outbox is two tables of the ledger (see :mod:`calwarden.daemon.stores.outbox`);
+the sender has its own connection to it, in its own thread, so that a slow or
+absent mail server never holds up a verdict. It writes only the outbox; it reads
+the verdicts its alerts are about, and the control log for inline charts. Each cycle it
 
 1. adds the daily summary when one is due (off by default);
 2. releases new alerts: each is composed once, written as an ``.eml`` file in
@@ -46,8 +47,10 @@ from calwarden.daemon.alerts.settings import AlertSettings
 from calwarden.daemon.alerts.transport import DeliveryError, post_webhook, send_email
 from calwarden.daemon.control_log.log import ControlSettings, series_name
 from calwarden.daemon.outputs.files import atomic_write
-from calwarden.daemon.stores.ledger import LEDGER_NAME, LedgerError, NewAlert, SeriesKey, timestamp
+from calwarden.daemon.stores.control import ControlHistory
+from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
 from calwarden.daemon.stores.outbox import Delivery, Outbox, StoredAlert
+from calwarden.daemon.stores.records import NewAlert, SeriesKey, timestamp
 
 log = structlog.get_logger("calwarden")
 
@@ -108,6 +111,7 @@ class AlertSender:
         self._requests_lock = threading.Lock()
         self._thread: threading.Thread | None = None
         self._outbox: Outbox | None = None
+        self._control_log: ControlHistory | None = None
         self._release_failed = False
         self.fault: str | None = None
 
@@ -139,12 +143,14 @@ class AlertSender:
 
     def _run(self) -> None:
         try:
-            self._outbox = Outbox(self.state_dir / LEDGER_NAME)
+            database = Database(self.state_dir / LEDGER_NAME)
         except LedgerError as error:
             self.fault = str(error)
             log.critical("alert_sender_fault", reason=str(error))
             self._settled.set()
             return
+        self._outbox = Outbox(database)
+        self._control_log = ControlHistory(database)
         try:
             while not self._stop.is_set():
                 with self._requests_lock:
@@ -165,7 +171,7 @@ class AlertSender:
                 self._wake.wait(max(0.0, min(wait, _IDLE_WAIT)))
         finally:
             self._settled.set()
-            self._outbox.close()
+            database.close()
 
     def _cycle(self) -> float:
         """One pass over the outbox; returns how long to wait before the next."""
@@ -283,7 +289,7 @@ class AlertSender:
         from calwarden.daemon.outputs.drawing import control_chart_png
         from calwarden.daemon.outputs.pictures import build_chart, safe_name
 
-        assert self._outbox is not None
+        assert self._control_log is not None
         pictures = []
         for entry in series:
             if entry.get("kind") not in self.control.kinds:
@@ -295,7 +301,7 @@ class AlertSender:
                 str(entry.get("level") or ""),
             )
             try:
-                png = control_chart_png(build_chart(self._outbox, self.control, key))
+                png = control_chart_png(build_chart(self._control_log, self.control, key))
             except Exception as error:  # a picture is a courtesy; the alert goes without it
                 log.warning("alert_chart_failed", alert=alert.id, error=repr(error))
                 continue

@@ -400,7 +400,9 @@ def _chart(args: argparse.Namespace) -> int:
     import csv
 
     from calwarden.daemon.control_log.log import SeriesFilter, export_rows, recompute_baselines
-    from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, LedgerError, timestamp
+    from calwarden.daemon.stores.control import ControlHistory, ControlLog
+    from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
+    from calwarden.daemon.stores.records import timestamp
 
     folders = _daemon_folders(args)
     if folders is None:
@@ -416,11 +418,11 @@ def _chart(args: argparse.Namespace) -> int:
     chosen = SeriesFilter(args.instrument, args.analyte, args.kind)
     try:
         if args.chart_command == "export":
-            ledger = Ledger(ledger_path, read_only=True)
+            database = Database(ledger_path, read_only=True)
             try:
-                rows = export_rows(ledger, chosen)
+                rows = export_rows(ControlHistory(database), chosen)
             finally:
-                ledger.close()
+                database.close()
             stream = args.file.open("w", encoding="utf-8", newline="") if args.file else sys.stdout
             try:
                 csv.writer(stream, lineterminator="\n").writerows(rows)
@@ -432,12 +434,13 @@ def _chart(args: argparse.Namespace) -> int:
             return EXIT_PASS
         if args.chart_command == "baseline":
             now = timestamp()
-            ledger = Ledger(ledger_path)
+            database = Database(ledger_path)
             try:
-                limits, skipped = recompute_baselines(ledger, config.control, chosen, now)
-                ledger.set_limits(tuple(limits))
+                control = ControlLog(database)
+                limits, skipped = recompute_baselines(control, config.control, chosen, now)
+                control.set_limits(tuple(limits))
             finally:
-                ledger.close()
+                database.close()
             from calwarden.daemon.control_log.log import series_name
 
             for entry in limits:
@@ -451,11 +454,11 @@ def _chart(args: argparse.Namespace) -> int:
             return EXIT_PASS
         from calwarden.daemon.outputs.pictures import draw_charts
 
-        ledger = Ledger(ledger_path, read_only=True)
+        database = Database(ledger_path, read_only=True)
         try:
-            written = draw_charts(ledger, config.control, out / "charts", chosen)
+            written = draw_charts(ControlHistory(database), config.control, out / "charts", chosen)
         finally:
-            ledger.close()
+            database.close()
         for path in written:
             print(path)
         print(f"{len(written)} chart(s) in {out / 'charts'}")

@@ -6,8 +6,11 @@ from pathlib import Path
 
 from calwarden.daemon.alerts.sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
 from calwarden.daemon.intake.lock import is_locked, lock_owner
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Evaluation, LedgerError
+from calwarden.daemon.stores.control import ControlHistory
+from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
+from calwarden.daemon.stores.files import FileStore
 from calwarden.daemon.stores.outbox import Outbox
+from calwarden.daemon.stores.records import Evaluation
 
 
 def _line(evaluation: Evaluation) -> str:
@@ -35,19 +38,20 @@ def status_report(state_dir: Path) -> tuple[str, bool]:
         lines.append(f"no ledger at {ledger_path}: no daemon has watched into this folder yet")
         return "\n".join(lines) + "\n", False
     try:
-        ledger = Outbox(ledger_path, read_only=True)
+        database = Database(ledger_path, read_only=True)
         try:
-            counts = ledger.counts()
-            last = ledger.latest(limit=1)
-            last_failure = ledger.latest(outcome="fail", limit=1)
-            last_error = ledger.latest(outcome="error", limit=1)
-            series, points, limited = ledger.control_summary()
+            files = FileStore(database)
+            counts = files.counts()
+            last = files.latest(limit=1)
+            last_failure = files.latest(outcome="fail", limit=1)
+            last_error = files.latest(outcome="error", limit=1)
+            series, points, limited = ControlHistory(database).control_summary()
             try:
-                alert_lines = _alerts(ledger, state_dir)
+                alert_lines = _alerts(Outbox(database), state_dir)
             except LedgerError:  # a ledger from before the outbox, not yet opened by a daemon
                 alert_lines = ["alerts:       none yet"]
         finally:
-            ledger.close()
+            database.close()
     except LedgerError as error:
         lines.append(f"cannot read the ledger: {error}")
         return "\n".join(lines) + "\n", False

@@ -28,8 +28,8 @@ from typing import Any, Literal
 from pydantic import Field, field_validator
 
 from calwarden.daemon.settings.section import Section
-from calwarden.daemon.stores.ledger import (
-    Ledger,
+from calwarden.daemon.stores.control import ControlHistory
+from calwarden.daemon.stores.records import (
     NewLimits,
     NewPoint,
     SeriesKey,
@@ -165,7 +165,7 @@ def series_name(key: SeriesKey) -> str:
 
 
 def series_limits(
-    ledger: Ledger, settings: ControlSettings, key: SeriesKey
+    ledger: ControlHistory, settings: ControlSettings, key: SeriesKey
 ) -> tuple[ControlLimits | None, StoredLimits | None]:
     """The limits a series is judged by now, and the stored set they come from.
 
@@ -220,7 +220,7 @@ def baseline_for(
 
 
 def assess(
-    ledger: Ledger,
+    ledger: ControlHistory,
     settings: ControlSettings,
     instrument: str,
     run: str,
@@ -413,7 +413,7 @@ class SeriesFilter:
         )
 
 
-def export_rows(ledger: Ledger, chosen: SeriesFilter) -> list[list[str]]:
+def export_rows(ledger: ControlHistory, chosen: SeriesFilter) -> list[list[str]]:
     """The control log as CSV rows (header first), each point with its series' active limits."""
     rows: list[list[str]] = [list(EXPORT_COLUMNS)]
     for key in ledger.series_keys():
@@ -446,7 +446,7 @@ def export_rows(ledger: Ledger, chosen: SeriesFilter) -> list[list[str]]:
 
 
 def recompute_baselines(
-    ledger: Ledger, settings: ControlSettings, chosen: SeriesFilter, now: str
+    ledger: ControlHistory, settings: ControlSettings, chosen: SeriesFilter, now: str
 ) -> tuple[list[NewLimits], list[str]]:
     """New limits from each chosen series' most recent in-control points.
 

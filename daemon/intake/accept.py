@@ -41,9 +41,9 @@ from calwarden.daemon.outputs.report import render
 from calwarden.daemon.outputs.verdict_json import calwarden_version
 from calwarden.daemon.pipeline import Judgement, error_document, judge_file
 from calwarden.daemon.settings.config import AppConfig, Inbox
-from calwarden.daemon.stores.ledger import (
+from calwarden.daemon.stores.ledger import Ledger
+from calwarden.daemon.stores.records import (
     Evaluation,
-    Ledger,
     NewAlert,
     NewEvaluation,
     Seen,
@@ -124,7 +124,7 @@ def _count(document: dict[str, Any], severity: str) -> int:
 
 
 class Intake:
-    """Judges settled files of the watched inboxes; owns the ledger's writing connection."""
+    """Judges settled files of the watched inboxes into the worker's stores (its ledger)."""
 
     def __init__(
         self, ledger: Ledger, inboxes: tuple[Inbox, ...], alerts: AlertSettings | None = None
@@ -150,18 +150,18 @@ class Intake:
         """
         relative = path.relative_to(inbox.path).as_posix()
         seen = Seen(size, mtime_ns, sha256)
-        previous_state = self.ledger.seen(inbox.name, relative)
+        previous_state = self.ledger.files.seen(inbox.name, relative)
         if previous_state is not None and previous_state.sha256 == sha256:
-            self.ledger.touch(inbox.name, relative, seen)
+            self.ledger.files.touch(inbox.name, relative, seen)
             return Outcome(inbox.name, relative, "unchanged", sha256)
 
         # Only a path never judged can be a duplicate: a judged file given another
         # file's content is a new version of itself, and needs a current verdict.
         original = None
-        if self.ledger.current(inbox.name, relative) is None:
-            original = self.ledger.judged_content(inbox.name, sha256, elsewhere_than=relative)
+        if self.ledger.files.current(inbox.name, relative) is None:
+            original = self.ledger.files.judged_content(inbox.name, sha256, elsewhere_than=relative)
         if original is not None:
-            self.ledger.record_duplicate(
+            self.ledger.files.record_duplicate(
                 inbox.name,
                 relative,
                 seen,
@@ -191,7 +191,7 @@ class Intake:
         """Where this file's outputs go, relative to the inbox's output folder."""
         pure = PurePosixPath(relative)
         stem = fitting_stem(pure.with_suffix("").as_posix())
-        owner = self.ledger.stem_owner(inbox.name, stem)
+        owner = self.ledger.files.stem_owner(inbox.name, stem)
         if VERSION_MARK in pure.name or (owner is not None and owner != relative):
             # ``run.csv`` and ``run.txt`` both judged, or a name that looks like an
             # earlier version's: keep the whole name so that no verdict overwrites another.
@@ -202,7 +202,7 @@ class Intake:
         self, inbox: Inbox, path: Path, relative: str, data: bytes | None, seen: Seen
     ) -> Outcome:
         started = time.perf_counter()
-        previous = self.ledger.current(inbox.name, relative)
+        previous = self.ledger.files.current(inbox.name, relative)
         version = 1 if previous is None else previous.version + 1
         judgement = self._judgement(inbox, path, data)
         assessment = self._assess(inbox, relative, judgement)
@@ -361,7 +361,7 @@ class Intake:
         document = judgement.document
         instrument = document.get("instrument") or inbox.instrument or inbox.name
         return assess(
-            self.ledger,
+            self.ledger.control,
             settings,
             str(instrument),
             str(document.get("run") or relative),
@@ -388,7 +388,7 @@ class Intake:
 
     def _archive(self, inbox: Inbox, previous: Evaluation, out_folder: Path, name: str) -> None:
         """Write the previous version's outputs under ``<name>@v<version>``, from the ledger."""
-        document_bytes, flagged = self.ledger.outputs_of(previous.id)
+        document_bytes, flagged = self.ledger.files.outputs_of(previous.id)
         files = {
             ".report.txt": render(json.loads(document_bytes)).encode("utf-8"),
             ".verdict.json": document_bytes,

@@ -1,7 +1,10 @@
 """The watcher: notices every export the moment it is complete and judges it once.
 
 Folder events are hints, never "file ready". The observer's handler only puts
-a path on a queue; one worker thread does everything else:
+a path on a queue; one worker thread does everything else. The decisions are
+made by :mod:`calwarden.daemon.intake.settling` (pure); this module is their
+driver: it looks at files, keeps the candidates and the times they are due,
+and does what the decisions say:
 
 * a path becomes a *candidate*, and is judged once its size and modification
   time have not changed for the settle time and it opens for reading (a file
@@ -16,9 +19,10 @@ a path on a queue; one worker thread does everything else:
 * delete events are ignored: the raw data belongs to the lab, and a verdict
   stays when its file goes.
 
-The worker writes the ledger's evaluations and control log; the alert sender
-(:mod:`daemon.alert_sender`, its own thread and connection) writes only its
-outbox tables. A fault the worker cannot recover from (the ledger or the output
+The worker is handed the stores it writes (a :class:`~calwarden.daemon.stores.ledger.Ledger`:
+files and evaluations, the control log, pictures, new alerts); the alert sender
+(:mod:`calwarden.daemon.alerts.sender`, its own thread and connection) writes only
+its outbox. A fault the worker cannot recover from (the ledger or the output
 folder unwritable, the disk full) stops it with :attr:`Watcher.fault` set, after
 an alert saying so; the command line then exits non-zero so that the service
 manager restarts the daemon.
@@ -26,7 +30,6 @@ manager restarts the daemon.
 
 from __future__ import annotations
 
-import fnmatch
 import hashlib
 import heapq
 import itertools
@@ -48,21 +51,39 @@ from watchdog.observers.api import BaseObserver
 from watchdog.observers.polling import PollingObserver
 
 from calwarden.daemon.alerts.sender import AlertSender, daemon_trouble, emergency_alert
+from calwarden.daemon.intake import settling
 from calwarden.daemon.intake.accept import Intake, Outcome, OutputError
 from calwarden.daemon.intake.lock import StateLock
+from calwarden.daemon.intake.settling import (
+    GiveUp,
+    Judge,
+    Listed,
+    Locked,
+    Looked,
+    Observation,
+    Read,
+    ReadBack,
+    Retry,
+    Settling,
+    Step,
+    Unreadable,
+    Vanished,
+    Wait,
+    wanted,
+)
 from calwarden.daemon.outputs.files import is_leftover_temporary
 from calwarden.daemon.outputs.pictures import CHARTS_FOLDER, draw_calibration, draw_series
 from calwarden.daemon.outputs.verdict_json import calwarden_version
 from calwarden.daemon.parsing.reader import MAX_FILE_BYTES
 from calwarden.daemon.settings.config import Inbox, WatchPlan
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, LedgerError, SeriesKey
+from calwarden.daemon.stores.database import LEDGER_NAME, LedgerError
+from calwarden.daemon.stores.ledger import Ledger
+from calwarden.daemon.stores.records import SeriesKey
 
 log = structlog.get_logger("calwarden")
 
 _HINT_EVENTS = frozenset({"created", "modified", "moved", "closed"})
 _MAX_WAIT = 1.0  # seconds the worker sleeps at most, so that a stop is seen promptly
-_LOCKED_BACKOFF_CAP = 30.0
-_UNREADABLE_ATTEMPTS = 5
 _FAULT_ALERT_SECONDS = 10.0  # how long a faulted daemon waits for its alert to go
 _PICTURE_BACKLOG = 50  # runs whose calibration pictures are drawn after a backlog
 _DRAW_SLICE = 0.4  # seconds one picture may take; none is started closer to a file's turn
@@ -76,10 +97,7 @@ class StartError(Exception):
 class _Candidate:
     inbox: Inbox
     path: Path
-    size: int
-    mtime_ns: int
-    attempts: int = 0
-    due: float = 0.0  # when it is next checked; earlier entries for it in the heap are stale
+    state: Settling  # its state.due is when it is next checked; other heap entries are stale
 
 
 @dataclass(order=True, slots=True)
@@ -117,11 +135,6 @@ class _Hints(FileSystemEventHandler):
             log.error("event_handler_failed", error=repr(error))
 
 
-def _matches(name: str, patterns: tuple[str, ...]) -> bool:
-    folded = name.casefold()
-    return any(fnmatch.fnmatchcase(folded, pattern.casefold()) for pattern in patterns)
-
-
 def _file_sha256(path: Path) -> str:
     with path.open("rb") as stream:
         return hashlib.file_digest(stream, "sha256").hexdigest()
@@ -135,6 +148,7 @@ class Watcher:
     ) -> None:
         self.plan = plan
         self.settings = plan.settings
+        self.timing = settling.Timing(plan.settings.settle_seconds)
         self.fault: str | None = None
         self.outcomes = 0  # files settled and recorded (judged, duplicate or unchanged)
         self._on_outcome = on_outcome
@@ -171,7 +185,7 @@ class Watcher:
                 f"cannot use the state folder {self.plan.state_dir}: {error}"
             ) from None
         try:
-            ledger = Ledger(self.plan.state_dir / LEDGER_NAME)
+            ledger = Ledger.open(self.plan.state_dir / LEDGER_NAME)
         except LedgerError as error:
             self._lock.release()
             raise StartError(str(error)) from None
@@ -296,9 +310,10 @@ class Watcher:
         try:
             if self._ledger is None:
                 raise LedgerError("the ledger is not open")
-            self._ledger.record_alert(alert)
+            self._ledger.alerts.record(alert)
         except LedgerError as error:
-            log.error("alert_not_recorded", event=event, error=str(error))
+            # Not "event=": that is the log call's own first argument.
+            log.error("alert_not_recorded", alert_event=event, error=str(error))
             emergency_alert(self.plan.state_dir, self.plan.alerts, alert)
             return
         if self.sender is not None:
@@ -318,18 +333,6 @@ class Watcher:
             except queue.Empty:
                 return
 
-    def _wanted(self, inbox: Inbox, path: Path) -> bool:
-        name = path.name
-        if not _matches(name, inbox.patterns) or _matches(name, inbox.ignore):
-            return False
-        try:
-            relative = path.relative_to(inbox.path)
-        except ValueError:
-            return False
-        if len(relative.parts) > 1 and not inbox.recursive:
-            return False
-        return not any(part.startswith(".") for part in relative.parts[:-1])
-
     def _note(self, inbox: Inbox, path: Path) -> None:
         """A hint about a path: start watching it settle, or restart its settle time."""
         try:
@@ -338,57 +341,90 @@ class Watcher:
             return  # gone again (a temporary file renamed away): nothing to judge
         waiting = self._candidates.get(path)
         if waiting is not None:
-            if (info.st_size, info.st_mtime_ns) != (waiting.size, waiting.mtime_ns):
-                # Still being written: settled one settle time after this write, not after
-                # the next check finds it changed (which would make it wait twice).
-                waiting.size, waiting.mtime_ns, waiting.attempts = (
-                    info.st_size,
-                    info.st_mtime_ns,
-                    0,
-                )
-                self._schedule(path, self.settings.settle_seconds)
+            seen = settling.Hinted(info.st_size, info.st_mtime_ns)
+            self._follow(waiting, settling.step(waiting.state, seen, time.monotonic(), self.timing))
             return
         if stat.S_ISDIR(info.st_mode):
             if inbox.recursive:
                 self._scan(inbox, path)  # a folder moved in brings files no event announces
             return
-        if not stat.S_ISREG(info.st_mode) or not self._wanted(inbox, path):
+        if not stat.S_ISREG(info.st_mode) or not wanted(inbox, path):
             return
         assert self._ledger is not None
-        relative = path.relative_to(inbox.path).as_posix()
-        if self._ledger.unchanged(inbox.name, relative, info.st_size, info.st_mtime_ns):
-            return  # a late event about a file already judged as it is
-        self._candidates[path] = _Candidate(inbox, path, info.st_size, info.st_mtime_ns)
-        self._schedule(path, self.settings.settle_seconds)
+        recorded = self._ledger.files.seen(inbox.name, path.relative_to(inbox.path).as_posix())
+        seen = settling.Hinted(
+            info.st_size,
+            info.st_mtime_ns,
+            None if recorded is None else (recorded.size, recorded.mtime_ns),
+        )
+        step = settling.step(None, seen, time.monotonic(), self.timing)
+        if step.state is not None:
+            self._follow(_Candidate(inbox, path, step.state), step)
 
-    def _schedule(self, path: Path, delay: float) -> None:
-        when = time.monotonic() + delay
-        candidate = self._candidates.get(path)
-        if candidate is not None:
-            candidate.due = when
-        heapq.heappush(self._due, _Due(when, next(self._order), path))
+    def _follow(
+        self,
+        candidate: _Candidate,
+        step: Step,
+        read: tuple[Observation, bytes | None, str] | None = None,
+    ) -> None:
+        """Do what a settling step says; ``read`` is what reading the file gave, if it was."""
+        path = candidate.path
+        action = step.action
+        if step.state is None:
+            self._candidates.pop(path, None)
+        else:
+            candidate.state = step.state
+            self._candidates[path] = candidate
+        if isinstance(action, Wait | Retry):
+            heapq.heappush(self._due, _Due(action.due, next(self._order), path))
+        if isinstance(action, Retry | GiveUp):
+            relative = path.relative_to(candidate.inbox.path).as_posix()
+            observed = read[0] if read is not None else None
+            details: dict[str, object] = (
+                {"error": observed.error} if isinstance(observed, Unreadable) else {"locked": True}
+            )
+            if isinstance(action, GiveUp):
+                # Not lost: unrecorded, so the next rescan tries it again.
+                log.error(
+                    action.event, inbox=candidate.inbox.name, path=relative, gave_up=True, **details
+                )
+            elif action.first:
+                log.warning(action.event, inbox=candidate.inbox.name, path=relative, **details)
+        if isinstance(action, Judge):
+            assert read is not None
+            _, data, sha256 = read
+            self._process(candidate, data, sha256, action.size, action.mtime_ns)
 
     def _settle_due(self) -> None:
         while self._due and self._due[0].when <= time.monotonic() and not self._stop.is_set():
             entry = heapq.heappop(self._due)
             candidate = self._candidates.get(entry.path)
-            if candidate is not None and candidate.due == entry.when:
+            if candidate is not None and candidate.state.due == entry.when:
                 self._check_candidate(candidate)
 
     def _check_candidate(self, candidate: _Candidate) -> None:
-        path = candidate.path
         try:
-            info = path.stat()
+            info = candidate.path.stat()
         except OSError:
-            del self._candidates[path]
+            looked: Observation = Vanished()
+        else:
+            looked = Looked(info.st_size, info.st_mtime_ns)
+        step = settling.step(candidate.state, looked, time.monotonic(), self.timing)
+        if not isinstance(step.action, Read):
+            self._follow(candidate, step)
             return
-        if (info.st_size, info.st_mtime_ns) != (candidate.size, candidate.mtime_ns):
-            candidate.size, candidate.mtime_ns = info.st_size, info.st_mtime_ns
-            self._schedule(path, self.settings.settle_seconds)  # still being written
-            return
+        assert step.state is not None
+        read = self._read(candidate.path, step.state.size)
+        self._follow(
+            candidate, settling.step(step.state, read[0], time.monotonic(), self.timing), read
+        )
+
+    @staticmethod
+    def _read(path: Path, size: int) -> tuple[Observation, bytes | None, str]:
+        """Read a settled file once: what reading it showed, its bytes, their SHA-256."""
         data: bytes | None = None
         try:
-            if info.st_size > MAX_FILE_BYTES:
+            if size > MAX_FILE_BYTES:
                 sha256 = _file_sha256(path)  # judged as too large without being loaded
             else:
                 with path.open("rb") as stream:
@@ -396,36 +432,14 @@ class Watcher:
                 sha256 = hashlib.sha256(data).hexdigest()
             after = path.stat()
         except FileNotFoundError:
-            del self._candidates[path]
-            return
+            return Vanished(), None, ""
         except PermissionError:
             # Windows: the instrument's software still holds the file open.
-            self._retry(candidate, "file_locked", locked=True)
-            return
+            return Locked(), None, ""
         except OSError as error:
-            self._retry(candidate, "file_unreadable", error=repr(error))
-            return
-        if (after.st_size, after.st_mtime_ns) != (info.st_size, info.st_mtime_ns) or (
-            data is not None and len(data) != info.st_size
-        ):
-            candidate.size, candidate.mtime_ns = after.st_size, after.st_mtime_ns
-            self._schedule(path, self.settings.settle_seconds)  # it changed while being read
-            return
-        del self._candidates[path]
-        self._process(candidate, data, sha256, info.st_size, info.st_mtime_ns)
-
-    def _retry(self, candidate: _Candidate, event: str, **details: object) -> None:
-        candidate.attempts += 1
-        relative = candidate.path.relative_to(candidate.inbox.path).as_posix()
-        if event == "file_unreadable" and candidate.attempts >= _UNREADABLE_ATTEMPTS:
-            # Not lost: unrecorded, so the next rescan tries it again.
-            log.error(event, inbox=candidate.inbox.name, path=relative, gave_up=True, **details)
-            del self._candidates[candidate.path]
-            return
-        if candidate.attempts == 1:
-            log.warning(event, inbox=candidate.inbox.name, path=relative, **details)
-        delay = min(0.5 * 2 ** (candidate.attempts - 1), _LOCKED_BACKOFF_CAP)
-        self._schedule(candidate.path, delay)
+            return Unreadable(repr(error)), None, ""
+        length = None if data is None else len(data)
+        return ReadBack(after.st_size, after.st_mtime_ns, length), data, sha256
 
     def _process(
         self, candidate: _Candidate, data: bytes | None, sha256: str, size: int, mtime_ns: int
@@ -479,7 +493,9 @@ class Watcher:
             if self._stale_charts:
                 key = next(iter(self._stale_charts))
                 try:
-                    draw_series(self._ledger, control, self.plan.out / CHARTS_FOLDER, (key,))
+                    draw_series(
+                        self._ledger.control, control, self.plan.out / CHARTS_FOLDER, (key,)
+                    )
                 finally:
                     self._stale_charts.pop(key, None)  # after drawing: wait_pictures sees it
         except LedgerError:
@@ -489,11 +505,11 @@ class Watcher:
 
     def _next_run_to_draw(self) -> None:
         assert self._ledger is not None
-        pending = self._ledger.pictures_pending(limit=_PICTURE_BACKLOG + 1)
+        pending = self._ledger.pictures.pending(limit=_PICTURE_BACKLOG + 1)
         if len(pending) > _PICTURE_BACKLOG:
             # A backlog of old files (a first start on a full export folder) would keep
             # the daemon drawing for hours: only the newest runs get pictures.
-            skipped = self._ledger.skip_old_pictures(_PICTURE_BACKLOG)
+            skipped = self._ledger.pictures.skip_old(_PICTURE_BACKLOG)
             log.info("pictures_skipped", runs=skipped, kept=_PICTURE_BACKLOG)
             pending = pending[:_PICTURE_BACKLOG]
         if not pending:
@@ -501,7 +517,7 @@ class Watcher:
             return
         evaluation_id, inbox_name, stem = pending[0]
         inbox = next((i for i in self.plan.inboxes if i.name == inbox_name), None)
-        document = json.loads(self._ledger.outputs_of(evaluation_id)[0])
+        document = json.loads(self._ledger.files.outputs_of(evaluation_id)[0])
         analytes = list(document.get("calibrations") or {}) if inbox is not None else []
         pure = PurePosixPath(stem)
         folder = (inbox.out_dir if inbox is not None else self.plan.out) / pure.parent
@@ -518,7 +534,7 @@ class Watcher:
             if not drawing.analytes:
                 # Marked even when drawing failed (and said so): never retried in a loop.
                 self._drawing = None
-                self._ledger.mark_pictures_drawn(drawing.evaluation_id)
+                self._ledger.pictures.mark_drawn(drawing.evaluation_id)
 
     # ------------------------------------------------------------------ scans
 
@@ -559,25 +575,22 @@ class Watcher:
         if inbox.name in self._unreachable and folder == inbox.path:
             log.info("inbox_reachable", inbox=inbox.name, path=str(folder))
             self._unreachable.discard(inbox.name)
-        known = self._ledger.seen_in(inbox.name)
-        new: list[tuple[int, Path, int]] = []
+        known = self._ledger.files.seen_in(inbox.name)
+        listed: list[Listed] = []
         for entry in entries:
             path = Path(entry.path)
-            if path in self._candidates or not self._wanted(inbox, path):
+            if path in self._candidates or not wanted(inbox, path):
                 continue
             try:
                 info = entry.stat()
             except OSError:
                 continue
             relative = path.relative_to(inbox.path).as_posix()
-            if known.get(relative) == (info.st_size, info.st_mtime_ns):
-                continue
-            new.append((info.st_mtime_ns, path, info.st_size))
-        # Oldest first: a backlog is judged in the order the instrument wrote it, which
-        # is the order its control points join their charts.
-        for mtime_ns, path, size in sorted(new, key=lambda item: item[0]):
-            self._candidates[path] = _Candidate(inbox, path, size, mtime_ns)
-            self._schedule(path, self.settings.settle_seconds)
+            listed.append(Listed(path, relative, info.st_size, info.st_mtime_ns))
+        for item in settling.to_rescan(listed, known, self._candidates):
+            step = settling.start(item, time.monotonic(), self.timing)
+            assert step.state is not None
+            self._follow(_Candidate(inbox, item.path, step.state), step)
             found += 1
         return found
 

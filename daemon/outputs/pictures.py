@@ -1,7 +1,7 @@
 """Pictures on disk: each control series as a PNG, each run's calibrations as PNGs.
 
 The drawing itself is ``daemon/charts.py`` (plain data in, PNG bytes out);
-this module reads the ledger and the verdicts, decides each point's status,
+this module reads the control log and the verdicts, decides each point's status,
 and writes the files atomically. matplotlib is imported only when a picture
 is drawn.
 """
@@ -21,7 +21,8 @@ from calwarden.daemon.control_log.log import (
     series_name,
 )
 from calwarden.daemon.outputs.files import PART_LIMIT, atomic_write, shortened
-from calwarden.daemon.stores.ledger import Ledger, SeriesKey, StoredLimits
+from calwarden.daemon.stores.control import ControlHistory
+from calwarden.daemon.stores.records import SeriesKey, StoredLimits
 from calwarden.rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
 from calwarden.rules.verdict import Severity
 
@@ -72,7 +73,7 @@ def _limits_note(stored: StoredLimits | None, fixed: bool) -> str:
     return f"limits from {stored.n} baseline points, set {stored.set_at[:10]}"
 
 
-def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> Any:
+def build_chart(ledger: ControlHistory, settings: ControlSettings, key: SeriesKey) -> Any:
     """The :class:`daemon.charts.ControlChart` of one series, as the ledger has it now."""
     from calwarden.daemon.outputs.drawing import (
         BASELINE,
@@ -150,7 +151,7 @@ def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> An
 
 
 def draw_series(
-    ledger: Ledger, settings: ControlSettings, charts_dir: Path, keys: Iterable[SeriesKey]
+    ledger: ControlHistory, settings: ControlSettings, charts_dir: Path, keys: Iterable[SeriesKey]
 ) -> list[Path]:
     """Draw the given series' charts; returns the files written."""
     from calwarden.daemon.outputs.drawing import control_chart_png
@@ -165,7 +166,7 @@ def draw_series(
 
 
 def draw_charts(
-    ledger: Ledger, settings: ControlSettings, charts_dir: Path, chosen: SeriesFilter
+    ledger: ControlHistory, settings: ControlSettings, charts_dir: Path, chosen: SeriesFilter
 ) -> list[Path]:
     """Draw every chosen series of the log (``calwarden chart``)."""
     keys = [key for key in ledger.series_keys() if chosen.matches(key)]
