@@ -13,7 +13,9 @@ from pathlib import Path
 from typing import Any
 
 from calwarden.daemon.outputs.verdict_json import verdict_to_json
-from calwarden.daemon.parsing.reader import MAX_FILE_BYTES, RawTable, read_native
+from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
+from calwarden.daemon.parsing.native import read_native
+from calwarden.daemon.parsing.table import RawTable
 from calwarden.daemon.settings.config import AppConfig
 from calwarden.rules.errors import InputError
 from calwarden.rules.evaluate import evaluate

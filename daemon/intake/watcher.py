@@ -53,7 +53,7 @@ from calwarden.daemon.intake.lock import StateLock
 from calwarden.daemon.outputs.files import is_leftover_temporary
 from calwarden.daemon.outputs.pictures import CHARTS_FOLDER, draw_calibration, draw_series
 from calwarden.daemon.outputs.verdict_json import calwarden_version
-from calwarden.daemon.parsing.reader import MAX_FILE_BYTES
+from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
 from calwarden.daemon.settings.config import Inbox, WatchPlan
 from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger, LedgerError, SeriesKey
 

@@ -17,7 +17,7 @@ from typing import Any
 
 from calwarden.daemon.outputs.report import render
 from calwarden.daemon.outputs.verdict_json import dump_verdict
-from calwarden.daemon.parsing.reader import RawTable, header_key
+from calwarden.daemon.parsing.table import RawTable, header_key
 from calwarden.rules.model import Kind
 from calwarden.rules.verdict import Result, Verdict
 
