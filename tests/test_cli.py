@@ -184,3 +184,17 @@ def test_unwritable_out_still_prints_the_json(
     captured = capsys.readouterr()
     assert json.loads(captured.out)["status"] == "pass"
     assert "cannot write" in captured.err
+
+
+def test_version_is_read_without_importing_numpy() -> None:
+    """``calwarden --version`` prints the installed version and loads no numpy to learn it."""
+    from importlib.metadata import version
+
+    code = (
+        "import sys; from calwarden.daemon.cli.main import main; "
+        "main(['--version']); print('numpy' in sys.modules)"
+    )
+    result = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True
+    )
+    assert result.stdout.split() == ["calwarden", version("calwarden"), "False"]
