@@ -11,10 +11,12 @@ import hashlib
 import stat
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 from calwarden.daemon.outputs.verdict_json import verdict_to_json
-from calwarden.daemon.parsing.reader import MAX_FILE_BYTES, RawTable, read_native
+from calwarden.daemon.outputs.verdict_model import VerdictDocument
+from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
+from calwarden.daemon.parsing.native import read_native
+from calwarden.daemon.parsing.table import RawTable
 from calwarden.daemon.settings.config import AppConfig
 from calwarden.rules.errors import InputError
 from calwarden.rules.evaluate import evaluate
@@ -26,7 +28,7 @@ from calwarden.rules.verdict import Status, Verdict
 class Judgement:
     """The verdict document of one file, and what the flagged copy needs."""
 
-    document: dict[str, Any]
+    document: VerdictDocument
     table: RawTable | None
     verdict: Verdict | None
     run: Run | None = None
@@ -55,7 +57,7 @@ def error_document(
     *,
     data: bytes | None = None,
     instrument: str | None = None,
-) -> dict[str, Any]:
+) -> VerdictDocument:
     """The verdict JSON of a file that could not be evaluated."""
     verdict = Verdict(Status.ERROR, path.stem, instrument, (), (), (), error=message)
     sha256 = hashlib.sha256(data).hexdigest() if data is not None else _file_sha256(path)

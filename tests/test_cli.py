@@ -278,3 +278,17 @@ def test_what_is_not_a_regular_file_is_refused_at_once(tmp_path: Path, kind: str
         )
         assert done.returncode == 2, done.stdout + done.stderr
         assert "Traceback" not in done.stderr
+
+
+def test_version_is_read_without_importing_numpy() -> None:
+    """``calwarden --version`` prints the installed version and loads no numpy to learn it."""
+    from importlib.metadata import version
+
+    code = (
+        "import sys; from calwarden.daemon.cli.main import main; "
+        "main(['--version']); print('numpy' in sys.modules)"
+    )
+    result = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True
+    )
+    assert result.stdout.split() == ["calwarden", version("calwarden"), "False"]

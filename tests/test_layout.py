@@ -14,7 +14,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from calwarden.daemon.parsing.exports import Detected, export_table, read_export
-from calwarden.daemon.parsing.reader import RawTable, normalise, read_native
+from calwarden.daemon.parsing.native import normalise, read_native
+from calwarden.daemon.parsing.table import RawTable
 from calwarden.daemon.settings.formats import ExportFormat
 from calwarden.rules.errors import InputError
 from calwarden.rules.model import Kind, Reading

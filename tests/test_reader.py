@@ -11,16 +11,15 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from calwarden.daemon.parsing.reader import (
-    MAX_FILE_BYTES,
+from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
+from calwarden.daemon.parsing.native import (
     NATIVE_FIELDS,
     REQUIRED_FIELDS,
-    RawRow,
-    RawTable,
     decode_table,
     normalise,
     read_native,
 )
+from calwarden.daemon.parsing.table import RawRow, RawTable
 from calwarden.rules.errors import ConfigError, InputError
 from calwarden.rules.model import Kind, Reading, Run
 

@@ -8,7 +8,7 @@ from typing import Any
 import pytest
 import yaml
 
-from calwarden.daemon.parsing.reader import decode_table, normalise
+from calwarden.daemon.parsing.native import decode_table, normalise
 from calwarden.rules.criteria import build_criteria
 from calwarden.rules.evaluate import evaluate
 from calwarden.rules.registry import all_rules

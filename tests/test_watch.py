@@ -16,12 +16,14 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from test_verdict_model import shape_problems
 from waiting import wait_for
 from watchdog.observers.polling import PollingObserver
 
 from calwarden.daemon.intake.accept import Outcome
 from calwarden.daemon.intake.watcher import StartError, Watcher
 from calwarden.daemon.outputs.files import STEM_LIMIT
+from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
 from calwarden.daemon.stores.database import LEDGER_NAME
 from calwarden.daemon.stores.ledger import Ledger
@@ -493,6 +495,7 @@ def test_pictures_are_drawn_when_the_daemon_is_idle(
     assert document["pictures"] == [f"run.calibration-{a}.png" for a in document["calibrations"]]
     charts = list((out / "charts").rglob("*.png"))
     assert len(charts) == len(document["control_charts"])
+    assert shape_problems(document, VerdictDocument) == []  # the daemon's keys fit the model
     assert all(p.read_bytes().startswith(b"\x89PNG") for p in [*charts, out / pictures[0]])
 
 

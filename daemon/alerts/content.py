@@ -28,6 +28,7 @@ from typing import Any
 
 from calwarden.daemon.control_log.log import series_name
 from calwarden.daemon.outputs.verdict_json import CAUTION
+from calwarden.daemon.outputs.verdict_model import FindingEntry, VerdictDocument
 from calwarden.daemon.stores.records import SeriesKey
 
 #: How much of one piece of file text may go into a header.
@@ -75,23 +76,34 @@ def _plural(count: int, word: str) -> str:
 # --------------------------------------------------------------------------- summaries
 
 
-def _finding_summary(finding: Mapping[str, Any]) -> dict[str, Any]:
+def _finding_summary(finding: FindingEntry) -> dict[str, Any]:
     return {
-        key: finding.get(key)
-        for key in ("rule", "severity", "analyte", "sample_id", "seq", "value", "limit", "message")
+        "rule": finding.get("rule"),
+        "severity": finding.get("severity"),
+        "analyte": finding.get("analyte"),
+        "sample_id": finding.get("sample_id"),
+        "seq": finding.get("seq"),
+        "value": finding.get("value"),
+        "limit": finding.get("limit"),
+        "message": finding.get("message"),
     }
 
 
 def _fired_series(
-    document: Mapping[str, Any], findings: Sequence[Mapping[str, Any]]
-) -> list[dict[str, Any]]:
+    document: VerdictDocument, findings: Sequence[FindingEntry]
+) -> list[dict[str, str]]:
     """The series a control rule fired on, in the order the findings name them."""
     messages = [
         str(f.get("message", "")) for f in findings if str(f.get("rule", "")).startswith("control.")
     ]
     named = []
     for entry in document.get("control_charts", []):
-        key = {k: str(entry.get(k) or "") for k in ("instrument", "analyte", "kind", "level")}
+        key = {
+            "instrument": entry.get("instrument") or "",
+            "analyte": entry.get("analyte") or "",
+            "kind": entry.get("kind") or "",
+            "level": entry.get("level") or "",
+        }
         name = series_name(SeriesKey(**key))
         # A series' name is followed by a sample label in the rules' messages.
         first = min((m.find(f"{name} ") for m in messages if f"{name} " in m), default=-1)
@@ -103,7 +115,7 @@ def _fired_series(
 
 def file_alert(
     kind: str,
-    document: Mapping[str, Any],
+    document: VerdictDocument,
     *,
     inbox: str,
     path: str,

@@ -536,9 +536,13 @@ def main(argv: Sequence[str] | None = None) -> int:
 def _dispatch(argv: Sequence[str] | None) -> int:
     args = _parser().parse_args(argv)
     if args.version:
-        from calwarden.daemon.outputs.verdict_json import calwarden_version
+        # From the package metadata alone: the verdict module would import numpy to say it.
+        from importlib.metadata import PackageNotFoundError, version
 
-        print(f"calwarden {calwarden_version()}")
+        try:
+            print(f"calwarden {version('calwarden')}")
+        except PackageNotFoundError:
+            print("calwarden unknown")
         return EXIT_PASS
     if args.command == "check":
         return _check(args)

@@ -23,10 +23,11 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Literal
 
 from pydantic import Field, field_validator
 
+from calwarden.daemon.outputs.verdict_model import ControlChartEntry, FindingEntry, VerdictDocument
 from calwarden.daemon.settings.section import Section
 from calwarden.daemon.stores.control import ControlHistory
 from calwarden.daemon.stores.records import (
@@ -151,8 +152,8 @@ class Assessment:
 
     points: tuple[NewPoint, ...]
     limits: tuple[NewLimits, ...]
-    findings: tuple[dict[str, Any], ...]
-    series: tuple[dict[str, Any], ...]  # one summary per series, for the verdict JSON
+    findings: tuple[FindingEntry, ...]
+    series: tuple[ControlChartEntry, ...]  # one summary per series, for the verdict JSON
 
 
 def series_name(key: SeriesKey) -> str:
@@ -263,7 +264,7 @@ def assess(
 
     new_limits: list[NewLimits] = []
     groups: dict[tuple[str, str, str], list[ControlSeries]] = {}
-    summaries: list[dict[str, Any]] = []
+    summaries: list[ControlChartEntry] = []
     for key, fresh in new_by_key.items():
         limits, _ = series_limits(ledger, settings, key)
         size, in_control = ledger.series_size(key, excluding=replacing)
@@ -318,7 +319,7 @@ def assess(
             ControlSeries(series_name(key), tuple(series_points), limits)
         )
 
-    findings: list[dict[str, Any]] = []
+    findings: list[FindingEntry] = []
     for (_, analyte, _), group in sorted(groups.items()):
         violations = list(evaluate_group(group, settings.rules))
         if settings.ewma:
@@ -359,7 +360,7 @@ def assess(
     return Assessment(points, tuple(new_limits), tuple(findings), tuple(summaries))
 
 
-def amend(document: dict[str, Any], assessment: Assessment) -> dict[str, Any]:
+def amend(document: VerdictDocument, assessment: Assessment) -> VerdictDocument:
     """The verdict document with the control findings and series added."""
     if not assessment.series and not assessment.findings:
         return document

@@ -28,7 +28,6 @@ import json
 import time
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
-from typing import Any
 
 import structlog
 
@@ -39,6 +38,7 @@ from calwarden.daemon.outputs.files import fitting_stem, output_files, write_fil
 from calwarden.daemon.outputs.pictures import calibration_picture_name
 from calwarden.daemon.outputs.report import render
 from calwarden.daemon.outputs.verdict_json import calwarden_version
+from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.pipeline import Judgement, error_document, judge_file
 from calwarden.daemon.settings.config import AppConfig, Inbox
 from calwarden.daemon.stores.ledger import Ledger
@@ -110,7 +110,7 @@ def config_digest(config: AppConfig) -> str:
     return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
 
 
-def _first_failure(document: dict[str, Any]) -> str | None:
+def _first_failure(document: VerdictDocument) -> str | None:
     if document.get("error"):
         return str(document["error"])
     for finding in document.get("findings", []):
@@ -119,7 +119,7 @@ def _first_failure(document: dict[str, Any]) -> str | None:
     return None
 
 
-def _count(document: dict[str, Any], severity: str) -> int:
+def _count(document: VerdictDocument, severity: str) -> int:
     return sum(1 for finding in document.get("findings", []) if finding.get("severity") == severity)
 
 
@@ -303,7 +303,7 @@ class Intake:
             series=tuple(dict.fromkeys(point.key for point in assessment.points)),
         )
 
-    def _alert_kind(self, document: dict[str, Any]) -> str | None:
+    def _alert_kind(self, document: VerdictDocument) -> str | None:
         status = document.get("status")
         if status in ("fail", "error"):
             return str(status)
@@ -318,7 +318,7 @@ class Intake:
         self,
         inbox: Inbox,
         relative: str,
-        document: dict[str, Any],
+        document: VerdictDocument,
         *,
         version: int,
         sha256: str,

@@ -42,7 +42,6 @@ import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
-from typing import Any
 
 import structlog
 from watchdog.events import FileSystemEvent, FileSystemEventHandler
@@ -74,7 +73,8 @@ from calwarden.daemon.intake.settling import (
 from calwarden.daemon.outputs.files import is_leftover_temporary
 from calwarden.daemon.outputs.pictures import CHARTS_FOLDER, draw_calibration, draw_series
 from calwarden.daemon.outputs.verdict_json import calwarden_version
-from calwarden.daemon.parsing.reader import MAX_FILE_BYTES
+from calwarden.daemon.outputs.verdict_model import VerdictDocument
+from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
 from calwarden.daemon.settings.config import Inbox, WatchPlan
 from calwarden.daemon.stores.database import LEDGER_NAME, LedgerError
 from calwarden.daemon.stores.ledger import Ledger
@@ -112,7 +112,7 @@ class _RunPictures:
     """The calibration pictures of one judged run still to draw."""
 
     evaluation_id: int
-    document: dict[str, Any]
+    document: VerdictDocument
     folder: Path
     stem: str
     analytes: list[str]

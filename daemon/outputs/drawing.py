@@ -34,11 +34,12 @@ import io
 import math
 import textwrap
 import threading
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from typing import TYPE_CHECKING, Any, TypeGuard
 
+from calwarden.daemon.outputs.verdict_model import CalibrationEntry
 from calwarden.rules.control import BASELINE_SIZE
 
 #: The daemon draws in two threads (the worker's pictures, the alert sender's inline
@@ -565,7 +566,7 @@ def _overlap(a: tuple[float, float, float, float], b: tuple[float, float, float,
 # --- calibration ------------------------------------------------------------------------
 
 
-def calibration_png(analyte: str, calibration: Mapping[str, Any]) -> bytes:
+def calibration_png(analyte: str, calibration: CalibrationEntry) -> bytes:
     """One calibration of the verdict JSON (``calibrations[analyte]``) as a PNG of 900 × 800 px.
 
     Top: the standards and the fitted curve (response against concentration, the
@@ -577,7 +578,7 @@ def calibration_png(analyte: str, calibration: Mapping[str, Any]) -> bytes:
         return _png(calibration_figure(analyte, calibration))
 
 
-def calibration_figure(analyte: str, calibration: Mapping[str, Any]) -> Figure:
+def calibration_figure(analyte: str, calibration: CalibrationEntry) -> Figure:
     """The calibration as a matplotlib figure on an Agg canvas (for tests, other formats)."""
     import numpy as np
     from matplotlib.ticker import FuncFormatter, NullFormatter
@@ -585,12 +586,14 @@ def calibration_figure(analyte: str, calibration: Mapping[str, Any]) -> Figure:
     from calwarden.rules.criteria import AnalyteCriteria
 
     guide = float(AnalyteCriteria.model_fields["back_calculation_pct"].default)
-    standards = [s for s in calibration.get("standards") or () if _finite(s.get("nominal"))]
-    nominal = [float(s["nominal"]) for s in standards]
+    placed = [(s, x) for s in calibration.get("standards") or () if _finite(x := s.get("nominal"))]
+    standards = [s for s, _ in placed]
+    nominal = [float(x) for _, x in placed]
     response = [s.get("response") for s in standards]
     coefficients = list(calibration.get("coefficients") or ())
+    finite_coefficients = [float(c) for c in coefficients if _finite(c)]
     problem = calibration.get("problem")
-    fitted = not problem and bool(coefficients) and all(_finite(c) for c in coefficients)
+    fitted = not problem and bool(coefficients) and len(finite_coefficients) == len(coefficients)
     unit = calibration.get("unit")
 
     figure = _new_figure(CALIBRATION_SIZE_INCHES)
@@ -630,7 +633,7 @@ def calibration_figure(analyte: str, calibration: Mapping[str, Any]) -> Figure:
         gid="standards",
     )
     if fitted and high > 0.0:
-        b = [float(c) for c in coefficients] + [0.0, 0.0]
+        b = [*finite_coefficients, 0.0, 0.0]
         if log_scale:
             grid = np.geomspace(low / 1.15, high * 1.15, 200)
         else:
@@ -665,9 +668,9 @@ def calibration_figure(analyte: str, calibration: Mapping[str, Any]) -> Figure:
 
     # Back-calculation errors.
     errors = [
-        (x, float(s["error_pct"]))
+        (x, float(error))
         for x, s in zip(nominal, standards, strict=True)
-        if _finite(s.get("error_pct"))
+        if _finite(error := s.get("error_pct"))
     ]
     bottom.axhline(0.0, color=_INK, linewidth=0.9, zorder=1)
     reach = max([guide * 1.4] + [abs(e) * 1.15 for _, e in errors])
@@ -743,7 +746,7 @@ def _finite(value: object) -> TypeGuard[float]:
 
 
 def _calibrated_range(
-    calibration: Mapping[str, Any], nominal: Sequence[float]
+    calibration: CalibrationEntry, nominal: Sequence[float]
 ) -> tuple[float, float]:
     bounds = calibration.get("range") or [None, None]
     low = float(bounds[0]) if _finite(bounds[0]) else min(nominal, default=0.0)
@@ -788,8 +791,9 @@ def _wrap(text: str, width: int) -> str:
     return "\n".join(textwrap.wrap(text, width, break_on_hyphens=False))
 
 
-def _equation(calibration: Mapping[str, Any]) -> str:
-    b = [float(c) for c in calibration["coefficients"]]
+def _equation(calibration: CalibrationEntry) -> str:
+    # Drawn only for a fit, whose coefficients are all finite.
+    b = [float(c) for c in calibration.get("coefficients") or () if _finite(c)]
     model = calibration.get("model")
     if model == "average_rf":
         rf = calibration.get("response_factor_mean")
@@ -827,7 +831,7 @@ _MODEL_NAMES = {
 }
 
 
-def _calibration_subtitle(calibration: Mapping[str, Any], unit: str | None) -> str:
+def _calibration_subtitle(calibration: CalibrationEntry, unit: str | None) -> str:
     model = _MODEL_NAMES.get(str(calibration.get("model")), str(calibration.get("model")))
     weighting = calibration.get("weighting")
     weights = "unweighted" if weighting in (None, "none") else f"weighted {weighting}"

@@ -14,11 +14,11 @@ import os
 import tempfile
 import time
 from pathlib import Path
-from typing import Any
 
 from calwarden.daemon.outputs.report import render
 from calwarden.daemon.outputs.verdict_json import dump_verdict
-from calwarden.daemon.parsing.reader import RawTable, header_key
+from calwarden.daemon.outputs.verdict_model import VerdictDocument
+from calwarden.daemon.parsing.table import RawTable, header_key
 from calwarden.rules.model import Kind
 from calwarden.rules.verdict import Result, Verdict
 
@@ -170,7 +170,7 @@ OUTPUT_SUFFIXES = (".flagged.csv", ".report.txt", ".verdict.json")
 
 
 def output_files(
-    document: dict[str, Any], table: RawTable | None = None, verdict: Verdict | None = None
+    document: VerdictDocument, table: RawTable | None = None, verdict: Verdict | None = None
 ) -> dict[str, bytes]:
     """The bytes of each output file by suffix (no flagged copy for a file never read)."""
     files: dict[str, bytes] = {}
@@ -196,7 +196,7 @@ def write_files(out_dir: Path, stem: str, files: dict[str, bytes]) -> list[Path]
 def write_outputs(
     out_dir: Path,
     stem: str,
-    document: dict[str, Any],
+    document: VerdictDocument,
     table: RawTable | None = None,
     verdict: Verdict | None = None,
 ) -> list[Path]:

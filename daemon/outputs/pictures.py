@@ -1,6 +1,6 @@
 """Pictures on disk: each control series as a PNG, each run's calibrations as PNGs.
 
-The drawing itself is ``daemon/charts.py`` (plain data in, PNG bytes out);
+The drawing itself is ``drawing.py`` (plain data in, PNG bytes out);
 this module reads the control log and the verdicts, decides each point's status,
 and writes the files atomically. matplotlib is imported only when a picture
 is drawn.
@@ -9,10 +9,10 @@ is drawn.
 from __future__ import annotations
 
 import re
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
 from calwarden.daemon.control_log.log import (
     ControlSettings,
@@ -21,10 +21,14 @@ from calwarden.daemon.control_log.log import (
     series_name,
 )
 from calwarden.daemon.outputs.files import PART_LIMIT, atomic_write, shortened
+from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.stores.control import ControlHistory
 from calwarden.daemon.stores.records import SeriesKey, StoredLimits
 from calwarden.rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
 from calwarden.rules.verdict import Severity
+
+if TYPE_CHECKING:
+    from calwarden.daemon.outputs.drawing import ControlChart
 
 CHARTS_FOLDER = "charts"
 _HISTORY = 1000  # points read for one chart (it draws the last chart_points of them)
@@ -73,8 +77,8 @@ def _limits_note(stored: StoredLimits | None, fixed: bool) -> str:
     return f"limits from {stored.n} baseline points, set {stored.set_at[:10]}"
 
 
-def build_chart(ledger: ControlHistory, settings: ControlSettings, key: SeriesKey) -> Any:
-    """The :class:`daemon.charts.ControlChart` of one series, as the ledger has it now."""
+def build_chart(ledger: ControlHistory, settings: ControlSettings, key: SeriesKey) -> ControlChart:
+    """The :class:`~drawing.ControlChart` of one series, as the ledger has it now."""
     from calwarden.daemon.outputs.drawing import (
         BASELINE,
         IN_CONTROL,
@@ -173,9 +177,7 @@ def draw_charts(
     return draw_series(ledger, settings, charts_dir, keys)
 
 
-def draw_calibration(
-    document: Mapping[str, Any], out_folder: Path, stem: str, analyte: str
-) -> Path:
+def draw_calibration(document: VerdictDocument, out_folder: Path, stem: str, analyte: str) -> Path:
     """The picture of one calibration of a verdict: the curve over its standards, residuals."""
     from calwarden.daemon.outputs.drawing import calibration_png
 

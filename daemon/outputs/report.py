@@ -8,7 +8,8 @@ reported the same way.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Any
+
+from calwarden.daemon.outputs.verdict_model import FindingEntry, VerdictDocument
 
 SEVERITY_ORDER = {"fail": 0, "warn": 1, "info": 2}
 #: Flags in plain words, for the re-run list.
@@ -39,7 +40,7 @@ def _heading(text: str, underline: str = "-") -> list[str]:
     return ["", text, underline * len(text)]
 
 
-def status_line(document: dict[str, Any]) -> str:
+def status_line(document: VerdictDocument) -> str:
     """``FAIL: 3 failing findings, 2 warnings`` (or the error), one line."""
     status = document["status"]
     if status == "error":
@@ -53,7 +54,7 @@ def status_line(document: dict[str, Any]) -> str:
     return f"{_WORD[status]}: " + (", ".join(parts) if parts else "every criterion met")
 
 
-def _reruns(document: dict[str, Any]) -> list[str]:
+def _reruns(document: VerdictDocument) -> list[str]:
     reruns = document.get("reruns", [])
     lines = _heading(f"Samples to re-run ({len(reruns)})")
     if not reruns:
@@ -70,13 +71,13 @@ def _reruns(document: dict[str, Any]) -> list[str]:
     return lines
 
 
-def _findings(document: dict[str, Any]) -> list[str]:
+def _findings(document: VerdictDocument) -> list[str]:
     findings = document.get("findings", [])
     lines = _heading("Findings by analyte")
     if not findings:
         lines.append("none")
         return lines
-    groups: dict[str, list[dict[str, Any]]] = {}
+    groups: dict[str, list[FindingEntry]] = {}
     for finding in findings:
         groups.setdefault(finding.get("analyte") or "(whole run)", []).append(finding)
     for analyte, items in groups.items():
@@ -88,7 +89,7 @@ def _findings(document: dict[str, Any]) -> list[str]:
     return lines
 
 
-def _calibrations(document: dict[str, Any]) -> list[str]:
+def _calibrations(document: VerdictDocument) -> list[str]:
     calibrations = document.get("calibrations", {})
     lines = _heading("Calibrations")
     if not calibrations:
@@ -130,7 +131,7 @@ def _calibrations(document: dict[str, Any]) -> list[str]:
     return lines
 
 
-def _results(document: dict[str, Any]) -> list[str]:
+def _results(document: VerdictDocument) -> list[str]:
     results = document.get("results", [])
     lines = _heading(f"Results ({len(results)})")
     rows = [("seq", "sample", "kind", "analyte", "concentration", "± u", "unit", "flags")]
@@ -151,7 +152,7 @@ def _results(document: dict[str, Any]) -> list[str]:
     return lines
 
 
-def _replicates(document: dict[str, Any]) -> list[str]:
+def _replicates(document: VerdictDocument) -> list[str]:
     """Replicate injections as the one result each sample reports (absent when there are none)."""
     groups = document.get("replicates") or []
     if not groups:
@@ -183,7 +184,7 @@ def _table(rows: Sequence[tuple[str, ...]]) -> list[str]:
     ]
 
 
-def _charts(document: dict[str, Any]) -> list[str]:
+def _charts(document: VerdictDocument) -> list[str]:
     """The control series the run added to, and the pictures next to this report."""
     lines: list[str] = []
     series = document.get("control_charts") or []
@@ -224,7 +225,7 @@ def _charts(document: dict[str, Any]) -> list[str]:
     return lines
 
 
-def render(document: dict[str, Any], *, full: bool = True) -> str:
+def render(document: VerdictDocument, *, full: bool = True) -> str:
     """The report; ``full=False`` gives the terminal summary (no calibration or result tables)."""
     source = document.get("source", {})
     sha = source.get("sha256")

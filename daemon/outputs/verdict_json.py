@@ -5,6 +5,8 @@ Stable keys (see README, "The verdict JSON"): ``status``, ``run``, ``source``,
 ``results``, ``error``. Added since: ``replicates`` (one entry per sample injected
 more than once: the reported mean, its uncertainty, the %RSD, the injections' seqs).
 More keys may be added; none is removed or renamed.
+The document's shape, key by key, is ``verdict_model.VerdictDocument``: a new
+key is added there too.
 """
 
 from __future__ import annotations
@@ -13,8 +15,18 @@ import functools
 import json
 import math
 from importlib.metadata import PackageNotFoundError, version
-from typing import Any
+from typing import Any, cast
 
+from calwarden.daemon.outputs.verdict_model import (
+    AdditionEntry,
+    CalibrationEntry,
+    FindingEntry,
+    FitEntry,
+    ReplicateEntry,
+    RerunEntry,
+    ResultEntry,
+    VerdictDocument,
+)
 from calwarden.rules.calibration import Fit
 from calwarden.rules.verdict import (
     AdditionSeries,
@@ -39,9 +51,9 @@ CAUTION = (
 PRETTY_RESULTS_LIMIT = 2000
 
 
-def dump_verdict(document: dict[str, Any]) -> str:
+def dump_verdict(document: VerdictDocument) -> str:
     """The verdict as JSON text: indented for people, compact for very large runs."""
-    if len(document.get("results", ())) <= PRETTY_RESULTS_LIMIT:
+    if len(document["results"]) <= PRETTY_RESULTS_LIMIT:
         return json.dumps(document, indent=2, ensure_ascii=False)
     return json.dumps(document, ensure_ascii=False, separators=(",", ":"))
 
@@ -61,7 +73,7 @@ def _number(value: float | None) -> float | None:
     return float(value)
 
 
-def _finding(finding: Finding, sample_ids: dict[int, str]) -> dict[str, Any]:
+def _finding(finding: Finding, sample_ids: dict[int, str]) -> FindingEntry:
     return {
         "rule": finding.rule,
         "severity": finding.severity.value,
@@ -75,7 +87,7 @@ def _finding(finding: Finding, sample_ids: dict[int, str]) -> dict[str, Any]:
     }
 
 
-def _fit(fit: Fit) -> dict[str, Any]:
+def _fit(fit: Fit) -> FitEntry:
     return {
         "model": fit.model.value,
         "weighting": fit.weighting.value,
@@ -95,7 +107,7 @@ def _fit(fit: Fit) -> dict[str, Any]:
     }
 
 
-def _calibration(calibration: Calibration) -> dict[str, Any]:
+def _calibration(calibration: Calibration) -> CalibrationEntry:
     fit = calibration.fit
     data: dict[str, Any] = {
         "model": fit.model.value if fit else None,
@@ -142,10 +154,12 @@ def _calibration(calibration: Calibration) -> dict[str, Any]:
             ],
         }
     )
-    return data
+    # Built in steps to keep the key order of the written JSON (the fit's figures after
+    # "points"); tests/test_verdict_model.py checks every document against the model.
+    return cast(CalibrationEntry, data)
 
 
-def _result(result: Result) -> dict[str, Any]:
+def _result(result: Result) -> ResultEntry:
     return {
         "sample_id": result.sample_id,
         "seq": result.seq,
@@ -162,7 +176,7 @@ def _result(result: Result) -> dict[str, Any]:
     }
 
 
-def _replicate(group: ReplicateGroup) -> dict[str, Any]:
+def _replicate(group: ReplicateGroup) -> ReplicateEntry:
     return {
         "sample_id": group.sample_id,
         "kind": group.kind.value,
@@ -180,7 +194,7 @@ def _replicate(group: ReplicateGroup) -> dict[str, Any]:
     }
 
 
-def _addition(series: AdditionSeries) -> dict[str, Any]:
+def _addition(series: AdditionSeries) -> AdditionEntry:
     outcome = series.outcome
     return {
         "analyte": series.analyte,
@@ -203,7 +217,7 @@ def verdict_to_json(
     sha256: str | None,
     criteria_sha256: str | None,
     with_results: bool = True,
-) -> dict[str, Any]:
+) -> VerdictDocument:
     """The verdict JSON document; ``with_results=False`` leaves ``results`` empty.
 
     The terminal summary needs no per-result entries, and on a large run they are
@@ -231,7 +245,7 @@ def verdict_to_json(
     }
 
 
-def rerun_list(verdict: Verdict) -> list[dict[str, Any]]:
+def rerun_list(verdict: Verdict) -> list[RerunEntry]:
     """One entry per injection to re-run: its analytes, flags and the findings that say why."""
     why: dict[tuple[int | None, str], list[str]] = {}
     for finding in verdict.findings:
@@ -239,7 +253,7 @@ def rerun_list(verdict: Verdict) -> list[dict[str, Any]]:
             # A finding about the whole analyte (its calibration) concerns every result of it.
             for seq in finding.affected or (None,):
                 why.setdefault((seq, finding.analyte), []).append(finding.message)
-    entries: dict[tuple[int | None, str], dict[str, Any]] = {}
+    entries: dict[tuple[int | None, str], RerunEntry] = {}
     for result in verdict.reruns():
         entry = entries.setdefault(
             (result.seq, result.sample_id),

@@ -1,12 +1,16 @@
-"""Read an instrument's own export through an :class:`~daemon.formats.ExportFormat`.
+"""Another layout: an instrument's own export, read through an :class:`ExportFormat`.
 
 :func:`export_table` turns the bytes of a CSV or XLSX export into a
-:class:`~daemon.reader.RawTable` in native columns: the header holds the native
+:class:`~table.RawTable` in native columns: the header holds the native
 fields it produced (in the native order), then the export's other columns under
 their own names, so that a flagged copy still carries them. Every row keeps the
 export's own line number (for XLSX: the sheet's row number), so that
-:func:`~daemon.reader.normalise` applies every strict native rule unchanged and
+:func:`~native.normalise` applies every strict native rule unchanged and
 its messages name lines the user can find in the export.
+
+A CSV export goes through the same stages as a native file: ``decode`` (with
+the format's ``encoding``), then ``table.split_rows`` once this module has found
+the header line and the delimiter. A workbook's cells become the same strings.
 
 The layout only translates; it never judges a value. A cell it cannot
 translate is left as written for ``normalise`` to refuse with its precise
@@ -43,8 +47,6 @@ Choices the format leaves open, made here once:
 
 from __future__ import annotations
 
-import codecs
-import csv
 import hashlib
 import io
 import re
@@ -61,20 +63,27 @@ from xml.etree import ElementTree
 
 import openpyxl  # type: ignore[import-untyped]
 
-from calwarden.daemon.parsing.reader import (
-    _ALLOWED_KINDS,
-    _KINDS,
-    MAX_FILE_BYTES,
+from calwarden.daemon.parsing.decode import MAX_FILE_BYTES, check_bytes, decode, read_file_bytes
+from calwarden.daemon.parsing.native import (
+    ALLOWED_KINDS,
+    KIND_WORDS,
     NATIVE_FIELDS,
+    NUMBER_FIELDS,
     REQUIRED_FIELDS,
     ParsedFile,
+    normalise,
+    parse_iso_time,
+)
+from calwarden.daemon.parsing.table import (
     RawRow,
     RawTable,
-    _check_binary,
-    _check_header,
+    Record,
+    check_header,
     header_key,
-    normalise,
-    read_file_bytes,
+    is_blank,
+    physical_lines,
+    split_line,
+    split_rows,
 )
 from calwarden.daemon.settings.formats import (
     ColumnByPattern,
@@ -95,8 +104,6 @@ _DELIMITERS: tuple[str, ...] = (",", ";", "\t", "|")
 #: Lines after the header that break a tie between delimiters splitting it equally.
 _CONSISTENCY_LINES = 5
 _ZIP_MAGIC = b"PK\x03\x04"
-#: Native fields whose cells are numbers written with the format's separators.
-_NUMBER_FIELDS = frozenset({"response", "nominal", "istd_response", "dilution", "added"})
 _NEEDS_NOMINAL = frozenset(kind.value for kind in NEEDS_NOMINAL)
 
 
@@ -120,17 +127,13 @@ class _CellNumber(str):
     __slots__ = ()
 
 
-#: A record of the body: first and last physical line, and its cells.
-_Record = tuple[int, int, Sequence[str]]
-
-
 @dataclass(frozen=True, slots=True)
 class _Grid:
     """The export split into cells, before any column is interpreted."""
 
     header: tuple[str, ...]
     header_line: int
-    records: Iterator[_Record]  # the rows after the header, lazily for CSV
+    records: Iterator[Record]  # the rows after the header, lazily for CSV
     rest: Callable[[int], Iterator[int]]  # non-blank lines after a line, once the footer starts
     skipped: list[tuple[int, str]]  # the preamble
     file_type: str
@@ -139,96 +142,7 @@ class _Grid:
     sheet: str | None = None
 
 
-# --------------------------------------------------------------------------- text
-
-
-def _lines_in(text: str) -> int:
-    """How many line ends ``text`` holds (LF, CRLF and lone CR, as the CSV reader counts)."""
-    return text.count("\n") + text.count("\r") - text.count("\r\n")
-
-
-def _decode(data: bytes, encoding: str) -> tuple[str, str]:
-    """The text of ``data`` and a description of its encoding, per the format's ``encoding``."""
-    for mark, codec in ((codecs.BOM_UTF16_LE, "utf-16-le"), (codecs.BOM_UTF16_BE, "utf-16-be")):
-        if data.startswith(mark):
-            if encoding not in ("auto", "utf-16"):
-                raise InputError(
-                    f"the file starts with a UTF-16 byte-order mark, but format.encoding is "
-                    f"{encoding}",
-                    1,
-                )
-            return _decode_as(data[len(mark) :], codec, f"{codec} (BOM)", len(mark))
-    if encoding == "utf-16":
-        # Without a mark, little-endian: what every common writer of UTF-16 files produces.
-        return _decode_as(data, "utf-16-le", "utf-16-le", 0)
-    if encoding in ("auto", "utf-8") and data.startswith(codecs.BOM_UTF8):
-        return _decode_as(data[len(codecs.BOM_UTF8) :], "utf-8", "utf-8 (with BOM)", 3)
-    if encoding == "auto":
-        try:
-            text = data.decode("utf-8")
-        except UnicodeDecodeError:
-            # Not UTF-8: a Windows program's export, in its ANSI code page.
-            return _decode_as(data, "cp1252", "cp1252", 0)
-        _binary_check(data)
-        return text, "utf-8"
-    return _decode_as(data, encoding, encoding, 0)
-
-
-def _decode_as(data: bytes, codec: str, label: str, skipped: int) -> tuple[str, str]:
-    if not codec.startswith("utf-16"):
-        _binary_check(data)  # UTF-8 and Windows-1252 keep control bytes as they are
-    try:
-        text = data.decode(codec)
-    except UnicodeDecodeError as exc:
-        bad = data[exc.start : exc.end].hex()
-        line = _lines_in(data[: exc.start].decode(codec, errors="replace")) + 1
-        raise InputError(
-            f"the file is not valid {label} text: byte(s) 0x{bad} at offset "
-            f"{exc.start + skipped} cannot be decoded (set format.encoding to the file's encoding)",
-            line,
-        ) from None
-    if codec.startswith("utf-16"):
-        # The binary check works on bytes; as UTF-8 the text keeps its control characters
-        # and its lines, so the check and its line numbers hold.
-        _binary_check(text.encode("utf-8", errors="surrogatepass"))
-    return text, label
-
-
-def _binary_check(data: bytes) -> None:
-    try:
-        _check_binary(data)
-    except InputError as error:
-        if data.count(0) * 3 > len(data):
-            # ASCII text as UTF-16 is every other byte NUL; say so rather than "binary".
-            raise InputError(
-                f"{error.reason}; it may be UTF-16 text without a byte-order mark "
-                "(set format.encoding: utf-16)",
-                error.line,
-            ) from None
-        raise
-
-
 # --------------------------------------------------------------------------- CSV
-
-
-def _physical_lines(text: str) -> Iterator[tuple[int, int, str]]:
-    """(line number, offset, content without its line end) of each physical line."""
-    offset = 0
-    for number, line in enumerate(io.StringIO(text, newline=""), start=1):
-        yield number, offset, line.rstrip("\r\n")
-        offset += len(line)
-
-
-def _split_line(line: str, delimiter: str) -> list[str]:
-    """One physical line's cells; a line the CSV rules cannot split is split plainly."""
-    try:
-        return next(csv.reader((line,), delimiter=delimiter), [])
-    except csv.Error:
-        return line.split(delimiter)
-
-
-def _is_blank(cells: Iterable[str]) -> bool:
-    return not "".join(cells).strip()
 
 
 def _has_cell(cells: Iterable[str], key: str) -> bool:
@@ -243,7 +157,7 @@ def _csv_grid(text: str, encoding: str, fmt: ExportFormat) -> _Grid:
         candidates = tuple(d for d in _DELIMITERS if not (d == "," and fmt.decimal == ","))
     skip = fmt.header.skip_lines
     find = fmt.header.find
-    lines = _physical_lines(text)
+    lines = physical_lines(text)
     skipped: list[tuple[int, str]] = [(number, "preamble") for number, _, _ in islice(lines, skip)]
     header_at: tuple[int, int, str] | None = None
     fitting = candidates
@@ -254,7 +168,7 @@ def _csv_grid(text: str, encoding: str, fmt: ExportFormat) -> _Grid:
                 header_at = (number, offset, content)
                 break
         else:
-            fitting = tuple(d for d in candidates if _has_cell(_split_line(content, d), key))
+            fitting = tuple(d for d in candidates if _has_cell(split_line(content, d), key))
             if fitting:
                 header_at = (number, offset, content)
                 break
@@ -273,11 +187,11 @@ def _csv_grid(text: str, encoding: str, fmt: ExportFormat) -> _Grid:
     following = [c for _, _, c in islice((ln for ln in lines if ln[2].strip()), _CONSISTENCY_LINES)]
     delimiter = _choose_delimiter(content, following, fitting)
 
-    records = _csv_records(text[offset:], delimiter, number)
+    records = split_rows(text[offset:], delimiter, number, name_late_notice=False)
     header_start, _, header = next(records)
 
     def rest(end: int) -> Iterator[int]:
-        tail = islice(_physical_lines(text[offset:]), end - number + 1, None)
+        tail = islice(physical_lines(text[offset:]), end - number + 1, None)
         return (number - 1 + n for n, _, c in tail if c.strip())
 
     return _Grid(
@@ -289,28 +203,11 @@ def _choose_delimiter(header: str, following: list[str], candidates: Sequence[st
     """The delimiter splitting the header into most cells; ties: the one the next lines agree on."""
 
     def score(delimiter: str) -> tuple[int, int]:
-        width = len(_split_line(header, delimiter))
-        agree = sum(len(_split_line(line, delimiter)) == width for line in following)
+        width = len(split_line(header, delimiter))
+        agree = sum(len(split_line(line, delimiter)) == width for line in following)
         return width, agree
 
     return max(candidates, key=score)  # max keeps the first of equals: _DELIMITERS order
-
-
-def _csv_records(text: str, delimiter: str, first_line: int) -> Iterator[_Record]:
-    """Each CSV row of ``text`` with the physical lines it spans, counted from ``first_line``."""
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True)
-    end = first_line - 1
-    try:
-        for fields in reader:
-            start = end + 1
-            end = first_line - 1 + reader.line_num
-            yield start, end, fields
-    except csv.Error as exc:
-        if str(exc) == "unexpected end of data":
-            reason = "a quote opened on this row is never closed: the file ends inside it"
-        else:
-            reason = f"the row cannot be split as CSV: {exc}; is a quote left unclosed?"
-        raise InputError(reason, end + 1) from None
 
 
 # --------------------------------------------------------------------------- XLSX
@@ -423,7 +320,7 @@ def _grid_of_rows(rows: list[tuple[str, ...]], fmt: ExportFormat, sheet: str) ->
     index: int | None = None
     for i in range(skip, len(rows)):
         if find is None:
-            if not _is_blank(rows[i]):
+            if not is_blank(rows[i]):
                 index = i
                 break
         elif _has_cell(rows[i], key):
@@ -443,12 +340,12 @@ def _grid_of_rows(rows: list[tuple[str, ...]], fmt: ExportFormat, sheet: str) ->
             f"{where} has no header row" + (f" after the {skip} skipped" if skip else "")
         )
 
-    def records() -> Iterator[_Record]:
+    def records() -> Iterator[Record]:
         for i in range(index + 1, len(rows)):
             yield i + 1, i + 1, rows[i]
 
     def rest(end: int) -> Iterator[int]:
-        return (i + 1 for i in range(end, len(rows)) if not _is_blank(rows[i]))
+        return (i + 1 for i in range(end, len(rows)) if not is_blank(rows[i]))
 
     preamble = [(i + 1, "preamble") for i in range(index)]
     return _Grid(rows[index], index + 1, records(), rest, preamble, "xlsx", sheet=sheet)
@@ -690,8 +587,8 @@ def _kind_resolver(kinds: KindSection) -> Callable[[str, str, int], str]:
             return kind
         word = text.strip()
         kind = codes.get(header_key(word)) if word else None
-        if kind is None and word and word.lower() in _KINDS:
-            kind = _KINDS[word.lower()].value
+        if kind is None and word and word.lower() in KIND_WORDS:
+            kind = KIND_WORDS[word.lower()].value
         if kind is None:
             kind = next((k for pattern, k in patterns if pattern.search(sample_id)), default)
         if kind is None:
@@ -710,7 +607,7 @@ def _no_kind(word: str, sample_id: str, kinds: KindSection) -> str:
         listed = ", ".join(f"'{p.match}'" for p in kinds.patterns)
         parts.append(f"sample id '{sample_id}' matches none of the kind patterns ({listed})")
     parts.append("and kinds.default is not set")
-    return f"{'; '.join(parts)}; allowed kinds: {_ALLOWED_KINDS}"
+    return f"{'; '.join(parts)}; allowed kinds: {ALLOWED_KINDS}"
 
 
 def _nominal_finder(nominals: NominalSection) -> Callable[[str, str, str], str | None] | None:
@@ -755,9 +652,8 @@ def _time_parser(formats: Sequence[str]) -> Callable[[str, int], str]:
         if known is not None:
             return known
         try:
-            # ISO 8601 first, read as normalise reads it (a trailing Z is UTC); fromisoformat
-            # directly, since a refusal costs less than reader._timestamp's InputError.
-            datetime.fromisoformat(cell[:-1] + "+00:00" if cell[-1:] in ("Z", "z") else cell)
+            # ISO 8601 first, read as normalise reads it (a trailing Z is UTC).
+            parse_iso_time(cell)
             done[cell] = cell
             return cell
         except ValueError:
@@ -811,7 +707,7 @@ class _Converter:
         self.pick = itemgetter(*sources, *columns.passthrough)
 
         self.clean = _number_cleaner(fmt)
-        numbers = [f for f in self.fields if f in _NUMBER_FIELDS and f in index]
+        numbers = [f for f in self.fields if f in NUMBER_FIELDS and f in index]
         if "seq" in index:  # only with order: column; rows numbers injections itself
             numbers.append("seq")
         self.numbers = tuple((at[f], f) for f in numbers)
@@ -944,23 +840,18 @@ def export_table(
     export's line numbers (XLSX: sheet rows); a wide row gives one row per
     measured analyte, all on its line. Every problem raises InputError.
     """
-    if len(data) > max_bytes:
-        raise InputError(
-            f"the file is too large to be a run: {len(data)} bytes, the limit is {max_bytes}"
-        )
-    if not data:
-        raise InputError("the file is empty")
+    check_bytes(data, max_bytes)  # a workbook too
     if _is_xlsx(data, fmt, suffix):
         grid = _xlsx_grid(data, fmt, max_bytes)
     else:
-        text, encoding = _decode(data, fmt.encoding)
-        grid = _csv_grid(text, encoding, fmt)
+        text = decode(data, fmt.encoding, max_bytes=max_bytes)
+        grid = _csv_grid(text.text, text.encoding, fmt)
 
     header = list(grid.header)
     while header and not header[-1].strip():
         header.pop()  # trailing delimiters or formatted empty columns
     header_line = grid.header_line
-    _check_header(tuple(header), header_line)
+    check_header(tuple(header), header_line)
     names = [name.strip() for name in header]
     columns = _resolve(names, header_line, fmt)
     converter = _Converter(names, columns, fmt)
@@ -973,7 +864,7 @@ def export_table(
     rows: list[RawRow] = []
     append = rows.append
     for start, end, fields in grid.records:
-        if _is_blank(fields):
+        if is_blank(fields):
             skipped.append((start, "blank"))
             continue
         first = fields[0].strip()
@@ -1006,7 +897,7 @@ def export_table(
 def _fit(fields: Sequence[str], width: int, line: int, is_xlsx: bool) -> Sequence[str]:
     """A row cut or padded to the header's width, where that loses nothing."""
     if len(fields) > width:
-        if _is_blank(fields[width:]):
+        if is_blank(fields[width:]):
             return fields[:width]
         if is_xlsx:
             extra = next(cell for cell in fields[width:] if cell.strip())

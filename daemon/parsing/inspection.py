@@ -8,20 +8,14 @@ first problem as ``check`` must.
 
 from __future__ import annotations
 
-import codecs
 from collections import Counter
 from dataclasses import dataclass, replace
 from pathlib import Path
 
+from calwarden.daemon.parsing.decode import decode, read_file_bytes
 from calwarden.daemon.parsing.exports import Detected, export_table
-from calwarden.daemon.parsing.reader import (
-    NATIVE_FIELDS,
-    RawTable,
-    decode_table,
-    header_key,
-    normalise,
-    read_file_bytes,
-)
+from calwarden.daemon.parsing.native import NATIVE_FIELDS, normalise
+from calwarden.daemon.parsing.table import RawTable, header_key, split_table
 from calwarden.daemon.settings.config import AppConfig
 from calwarden.rules.errors import InputError
 from calwarden.rules.model import Reading
@@ -71,11 +65,11 @@ def inspect_file(path: Path, config: AppConfig) -> Inspection:
 
 def _native_table(data: bytes, source: str) -> tuple[RawTable, Detected]:
     """The native reader's table, described as the layout reader describes its own."""
-    table = decode_table(data, source=source)
+    text = decode(data)
+    table = split_table(text.text, source=source)
     keys = {header_key(name): name for name in table.header}
     columns = {field: keys[field] for field in NATIVE_FIELDS if field in keys}
-    encoding = "utf-8 (with BOM)" if data.startswith(codecs.BOM_UTF8) else "utf-8"
-    return table, Detected("csv", encoding, ",", table.header_line, None, columns, (), ())
+    return table, Detected("csv", text.encoding, ",", table.header_line, None, columns, (), ())
 
 
 def _describe_reading(reading: Reading) -> tuple[str, ...]:

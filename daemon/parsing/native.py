@@ -1,58 +1,52 @@
-"""Read the native input format into a :class:`~rules.model.Run`.
+"""Stage 3 of reading a file: a table in native columns → a :class:`~rules.model.Run`.
 
-The native format is a UTF-8 CSV file (a byte-order mark is accepted) with a
-header row and one row per reading of one analyte in one injection. Columns may
-come in any order; header names are matched case-insensitively after stripping
-surrounding spaces; columns the format does not know are kept in the
-:class:`RawTable` so that a flagged copy of the file can carry them through.
+The native format is simply the default layout (``table.split_table``) of a
+UTF-8 CSV file (a byte-order mark is accepted): a header row and one row per
+reading of one analyte in one injection. Columns may come in any order; header
+names are matched case-insensitively after stripping surrounding spaces;
+columns the format does not know are kept in the :class:`~table.RawTable` so
+that a flagged copy of the file can carry them through.
 
-Reading happens in two stages, so that other instrument layouts can later be
-plugged in as a mapping of column names without touching the rules:
+:func:`decode_table` is the native file's first two stages (``decode``, then
+``table.split_table``); :func:`normalise` is the last stage for every layout:
+it maps native fields to header columns, converts the types and builds the
+validated :class:`~rules.model.Reading` and :class:`~rules.model.Run`
+objects. An instrument export (``exports.py``) is translated into a table in
+native columns, and ``normalise`` then judges it by the same rules.
 
-1. :func:`decode_table` turns bytes into a :class:`RawTable` of strings: size
-   check, binary check, UTF-8 decoding, CSV splitting, field-count check.
-2. :func:`normalise` maps native fields to header columns, converts the types
-   and builds the validated :class:`~rules.model.Reading` and
-   :class:`~rules.model.Run` objects.
-
-:func:`read_native` does both for a file on disk. Every problem with the input
-raises :class:`~rules.errors.InputError` naming the line (and the column where
-one applies); no other exception escapes for bad input.
+:func:`read_native` does it all for a file on disk. Every problem with the
+input raises :class:`~rules.errors.InputError` naming the line (and the column
+where one applies); no other exception escapes for bad input.
 """
 
 from __future__ import annotations
 
-import codecs
-import csv
 import hashlib
-import io
 import math
-import stat
 from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import datetime
 from operator import itemgetter
 from pathlib import Path
 
+from calwarden.daemon.parsing.decode import MAX_FILE_BYTES, decode, read_file_bytes
+from calwarden.daemon.parsing.table import RawTable, header_key, split_table
 from calwarden.rules.errors import ConfigError, InputError
 from calwarden.rules.model import Kind, Reading, Run
 
 __all__ = [
-    "MAX_FILE_BYTES",
+    "ALLOWED_KINDS",
+    "KIND_WORDS",
     "NATIVE_FIELDS",
+    "NUMBER_FIELDS",
     "OPTIONAL_FIELDS",
     "REQUIRED_FIELDS",
     "ParsedFile",
-    "RawRow",
-    "RawTable",
     "decode_table",
-    "header_key",
     "normalise",
+    "parse_iso_time",
     "read_native",
 ]
-
-#: Files larger than this are refused without being read: no run is that big.
-MAX_FILE_BYTES = 200 * 1024 * 1024
 
 #: Columns every native file must have.
 REQUIRED_FIELDS: tuple[str, ...] = ("seq", "sample_id", "kind", "analyte", "response")
@@ -71,37 +65,18 @@ OPTIONAL_FIELDS: tuple[str, ...] = (
 )
 #: Every column the native format knows, required first.
 NATIVE_FIELDS: tuple[str, ...] = REQUIRED_FIELDS + OPTIONAL_FIELDS
+#: Native fields whose cells are decimal numbers (``seq`` is a whole one).
+NUMBER_FIELDS = frozenset({"response", "nominal", "istd_response", "dilution", "added"})
 
-#: Share of control bytes above which a file is taken for binary data.
-_CONTROL_SHARE = 0.05
-#: Control bytes that never belong in a text file (tab, LF and CR do).
-_CONTROL_BYTES = bytes([*range(0x00, 0x09), 0x0B, 0x0C, *range(0x0E, 0x20), 0x7F])
-
-_KINDS: dict[str, Kind] = {kind.value: kind for kind in Kind}
-_ALLOWED_KINDS = ", ".join(kind.value for kind in Kind)
-
-
-@dataclass(frozen=True, slots=True)
-class RawRow:
-    """One data row as split from the file, before any type conversion."""
-
-    line: int  # 1-based physical line of the file where the row starts
-    fields: tuple[str, ...]
-
-
-@dataclass(frozen=True, slots=True)
-class RawTable:
-    """The file split into a header and rows of strings, exactly as written."""
-
-    header: tuple[str, ...]
-    rows: tuple[RawRow, ...]
-    header_line: int = 1  # 1-based line of the header row (blank lines may precede it)
-    source: str = "<data>"  # where the bytes came from, for people reading messages
+#: The native kind words (lower case) and the kinds they name.
+KIND_WORDS: dict[str, Kind] = {kind.value: kind for kind in Kind}
+#: The kind words, for messages.
+ALLOWED_KINDS = ", ".join(kind.value for kind in Kind)
 
 
 @dataclass(frozen=True, slots=True)
 class ParsedFile:
-    """A native file read from disk: its bytes' hash, the raw table and the run."""
+    """A file read from disk: its bytes' hash, the table in native columns and the run."""
 
     path: Path
     sha256: str
@@ -109,122 +84,19 @@ class ParsedFile:
     run: Run
 
 
-def header_key(name: str) -> str:
-    """The form header names are matched in: surrounding spaces stripped, case folded."""
-    return name.strip().casefold()
-
-
-# --------------------------------------------------------------------------- stage 1
-
-
-def _line_at(data: bytes, offset: int) -> int:
-    """The 1-based physical line holding byte ``offset`` (LF, CRLF and lone CR end lines)."""
-    head = data[:offset]
-    return head.count(b"\n") + head.count(b"\r") - head.count(b"\r\n") + 1
-
-
-def _check_binary(data: bytes) -> None:
-    if data.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
-        raise InputError("the file is UTF-16 text, which reads as binary here; save it as UTF-8", 1)
-    nul = data.find(b"\0")
-    if nul >= 0:
-        raise InputError(
-            "the file looks binary, not text: it holds a NUL byte", _line_at(data, nul)
-        )
-    controls = len(data) - len(data.translate(None, _CONTROL_BYTES))
-    if controls and controls > _CONTROL_SHARE * len(data):
-        first = min(i for i in (data.find(bytes([b])) for b in _CONTROL_BYTES) if i >= 0)
-        raise InputError(
-            f"the file looks binary, not text: {controls} of its {len(data)} bytes "
-            f"are control characters (the first is on this line)",
-            _line_at(data, first),
-        )
-
-
-def _decode(data: bytes) -> str:
-    try:
-        return data.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        bad = data[exc.start : exc.start + 1].hex()
-        raise InputError(
-            f"the file is not valid UTF-8 text: byte 0x{bad} cannot be decoded "
-            f"(was it saved as Latin-1 or Windows-1252? save it as UTF-8)",
-            _line_at(data, exc.start),
-        ) from None
-
-
 def decode_table(
     data: bytes, *, source: str = "<data>", max_bytes: int = MAX_FILE_BYTES
 ) -> RawTable:
-    """Split a file's bytes into a :class:`RawTable`, refusing anything that is not a CSV table.
-
-    The first non-blank row is the header; blank rows (every field empty) are
-    skipped. Every other row must have exactly one field per header column.
-    """
-    if len(data) > max_bytes:
-        raise InputError(
-            f"the file is too large to be a run: {len(data)} bytes, the limit is {max_bytes}"
-        )
-    if data.startswith(codecs.BOM_UTF8):
-        data = data[len(codecs.BOM_UTF8) :]
-    if not data:
-        raise InputError("the file is empty")
-    _check_binary(data)
-    text = _decode(data)
-
-    reader = csv.reader(io.StringIO(text, newline=""), strict=True)
-    header: tuple[str, ...] | None = None
-    header_line = 0
-    width = 0
-    rows: list[RawRow] = []
-    append = rows.append
-    end = 0  # physical line on which the previous row ended
-    try:
-        for fields in reader:
-            start = end + 1
-            end = reader.line_num
-            if not "".join(fields).strip():
-                continue  # a blank line, or a row of empty cells
-            if header is None:
-                header = tuple(fields)
-                header_line = start
-                width = len(header)
-                _check_header(header, header_line)
-                continue
-            if len(fields) != width:
-                raise InputError(
-                    f"expected {width} fields, one per header column, but found {len(fields)}",
-                    start,
-                )
-            append(RawRow(start, tuple(fields)))
-    except csv.Error as exc:
-        if str(exc) == "unexpected end of data":
-            reason = "a quote opened on this row is never closed: the file ends inside it"
-        else:
-            seen = "" if reader.line_num == end + 1 else f" (noticed on line {reader.line_num})"
-            reason = f"the row cannot be split as CSV: {exc}{seen}; is a quote left unclosed?"
-        raise InputError(reason, end + 1) from None
-    if header is None:
-        raise InputError("the file has no header row: it holds only blank lines")
-    return RawTable(header, tuple(rows), header_line, source)
+    """A native file's bytes as a :class:`RawTable`, refusing anything that is not a CSV table."""
+    return split_table(decode(data, max_bytes=max_bytes).text, source=source)
 
 
-def _check_header(header: tuple[str, ...], line: int) -> None:
-    seen: dict[str, int] = {}
-    for position, name in enumerate(header, start=1):
-        key = header_key(name)
-        if not key:
-            raise InputError(f"header column {position} has no name", line)
-        if key in seen:
-            raise InputError(
-                f"header name '{name.strip()}' is given twice (columns {seen[key]} and {position})",
-                line,
-                name.strip(),
-            )
-        seen[key] = position
+def parse_iso_time(text: str) -> datetime:
+    """An ISO 8601 date and time, a trailing Z read as UTC; ValueError if it is not one."""
+    return datetime.fromisoformat(text[:-1] + "+00:00" if text[-1:] in ("Z", "z") else text)
 
 
-# --------------------------------------------------------------------------- stage 2
+# --------------------------------------------------------------------------- cells
 
 
 def _number(text: str, line: int, column: str) -> float:
@@ -257,23 +129,25 @@ def _seq(text: str, line: int) -> int:
 
 
 def _kind(text: str, line: int) -> Kind:
-    kind = _KINDS.get(text.lower())
+    kind = KIND_WORDS.get(text.lower())
     if kind is None:
         shown = f"unknown kind '{text}'" if text else "kind is empty"
-        raise InputError(f"{shown}; allowed kinds: {_ALLOWED_KINDS}", line, "kind")
+        raise InputError(f"{shown}; allowed kinds: {ALLOWED_KINDS}", line, "kind")
     return kind
 
 
 def _timestamp(text: str, line: int) -> datetime:
-    iso = text[:-1] + "+00:00" if text[-1:] in ("Z", "z") else text
     try:
-        return datetime.fromisoformat(iso)
+        return parse_iso_time(text)
     except ValueError:
         raise InputError(
             f"acquired must be an ISO 8601 date and time such as 2024-05-01T14:30:00, got '{text}'",
             line,
             "acquired",
         ) from None
+
+
+# --------------------------------------------------------------------------- rows
 
 
 def _resolve_columns(table: RawTable, mapping: Mapping[str, str] | None) -> dict[str, int]:
@@ -329,7 +203,7 @@ def normalise(
     pick = itemgetter(*(col.get(field, width) for field in NATIVE_FIELDS))
     pad = ("",)
     strip = str.strip
-    kinds = _KINDS
+    kinds = KIND_WORDS
     readings: list[Reading] = []
     append = readings.append
     for row in table.rows:
@@ -390,9 +264,6 @@ def normalise(
     return Run.of(readings, None if named else run_name)
 
 
-_NUMERIC_FIELDS = frozenset({"response", "nominal", "istd_response", "dilution", "added"})
-
-
 def _check_cells(cells: tuple[str, ...], line: int) -> None:
     """Apply the strict cell rules one by one, raising InputError for the first broken cell."""
     for field, text in zip(NATIVE_FIELDS, cells, strict=True):
@@ -400,31 +271,11 @@ def _check_cells(cells: tuple[str, ...], line: int) -> None:
             _seq(text, line)
         elif field == "kind":
             _kind(text, line)
-        elif field in _NUMERIC_FIELDS and (text or field == "response"):
+        elif field in NUMBER_FIELDS and (text or field == "response"):
             _number(text, line, field)
 
 
-# --------------------------------------------------------------------------- both
-
-
-def read_file_bytes(path: Path, max_bytes: int = MAX_FILE_BYTES) -> bytes:
-    """A run file's bytes, read once; refuses what is not a regular file or is too large.
-
-    The size is checked before anything is read, so a huge file is never loaded.
-    """
-    try:
-        info = path.stat()
-        if not stat.S_ISREG(info.st_mode):
-            kind = "a directory" if stat.S_ISDIR(info.st_mode) else "not a regular file"
-            raise InputError(f"cannot read {path}: it is {kind}")
-        if info.st_size > max_bytes:
-            raise InputError(
-                f"the file is too large to be a run: {info.st_size} bytes, the limit is {max_bytes}"
-            )
-        with path.open("rb") as handle:
-            return handle.read(max_bytes + 1)  # a file growing since stat still hits the limit
-    except OSError as exc:
-        raise InputError(f"cannot read {path}: {exc.strerror or exc}") from None
+# --------------------------------------------------------------------------- a file
 
 
 def read_native(

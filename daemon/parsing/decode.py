@@ -1,0 +1,204 @@
+"""Stage 1 of reading a file: bytes → text.
+
+Every file calwarden reads as text passes here: the size check, the binary
+check and the decoding, with an :class:`~rules.errors.InputError` naming the
+line of the first problem. Lines end at LF, CRLF or a lone CR, as the CSV
+reader counts them (:func:`count_line_ends`), so a line number here is the line
+number every later stage reports.
+
+The native format is UTF-8 (a byte-order mark is accepted) and says so in its
+messages; an instrument export's format chooses its ``encoding`` (``auto``,
+``utf-8``, ``utf-16``, ``cp1252``) and the messages point at that setting.
+"""
+
+from __future__ import annotations
+
+import codecs
+import stat
+from dataclasses import dataclass
+from pathlib import Path
+
+from calwarden.rules.errors import InputError
+
+__all__ = [
+    "MAX_FILE_BYTES",
+    "Text",
+    "check_bytes",
+    "count_line_ends",
+    "decode",
+    "read_file_bytes",
+]
+
+#: Files larger than this are refused without being read: no run is that big.
+MAX_FILE_BYTES = 200 * 1024 * 1024
+
+#: Share of control bytes above which a file is taken for binary data.
+_CONTROL_SHARE = 0.05
+#: Control bytes that never belong in a text file (tab, LF and CR do).
+_CONTROL_BYTES = bytes([*range(0x00, 0x09), 0x0B, 0x0C, *range(0x0E, 0x20), 0x7F])
+_UTF16_MARKS = ((codecs.BOM_UTF16_LE, "utf-16-le"), (codecs.BOM_UTF16_BE, "utf-16-be"))
+
+
+@dataclass(frozen=True, slots=True)
+class Text:
+    """A file's text, and how it was decoded (for ``calwarden inspect``)."""
+
+    text: str
+    encoding: str  # e.g. "utf-8", "utf-8 (with BOM)", "utf-16-le (BOM)", "cp1252"
+
+
+def count_line_ends(text: str) -> int:
+    """How many line ends ``text`` holds: LF, CRLF and a lone CR each end a line."""
+    return text.count("\n") + text.count("\r") - text.count("\r\n")
+
+
+def _line_at(data: bytes, offset: int, codec: str = "latin-1") -> int:
+    """The 1-based line holding byte ``offset`` of ``data`` in ``codec``.
+
+    Latin-1 maps each byte to one character, so for the byte-oriented checks it
+    counts the LF and CR bytes themselves.
+    """
+    return count_line_ends(data[:offset].decode(codec, errors="replace")) + 1
+
+
+def check_bytes(data: bytes, max_bytes: int = MAX_FILE_BYTES) -> None:
+    """Refuse a file too large to be a run, or an empty one."""
+    if len(data) > max_bytes:
+        raise InputError(
+            f"the file is too large to be a run: {len(data)} bytes, the limit is {max_bytes}"
+        )
+    if not data:
+        raise InputError("the file is empty")
+
+
+def read_file_bytes(path: Path, max_bytes: int = MAX_FILE_BYTES) -> bytes:
+    """A run file's bytes, read once; refuses what is not a regular file or is too large.
+
+    The size is checked before anything is read, so a huge file is never loaded.
+    """
+    try:
+        info = path.stat()
+        if not stat.S_ISREG(info.st_mode):
+            kind = "a directory" if stat.S_ISDIR(info.st_mode) else "not a regular file"
+            raise InputError(f"cannot read {path}: it is {kind}")
+        if info.st_size > max_bytes:
+            raise InputError(
+                f"the file is too large to be a run: {info.st_size} bytes, the limit is {max_bytes}"
+            )
+        with path.open("rb") as handle:
+            return handle.read(max_bytes + 1)  # a file growing since stat still hits the limit
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror or exc}") from None
+
+
+def decode(data: bytes, encoding: str | None = None, *, max_bytes: int = MAX_FILE_BYTES) -> Text:
+    """The text of a file's bytes, after the size, binary and encoding checks.
+
+    ``encoding`` is an export format's ``encoding`` setting; ``None`` reads the
+    native format: UTF-8, with or without a byte-order mark.
+    """
+    check_bytes(data, max_bytes)
+    if encoding is None:
+        return _native(data)
+    return _configured(data, encoding)
+
+
+# --------------------------------------------------------------------------- native
+
+
+def _native(data: bytes) -> Text:
+    label = "utf-8"
+    if data.startswith(codecs.BOM_UTF8):
+        data, label = data[len(codecs.BOM_UTF8) :], "utf-8 (with BOM)"
+        if not data:
+            raise InputError("the file is empty")
+    _check_binary(data, configured=False)
+    try:
+        return Text(data.decode("utf-8"), label)
+    except UnicodeDecodeError as exc:
+        bad = data[exc.start : exc.start + 1].hex()
+        raise InputError(
+            f"the file is not valid UTF-8 text: byte 0x{bad} cannot be decoded "
+            f"(was it saved as Latin-1 or Windows-1252? save it as UTF-8)",
+            _line_at(data, exc.start, "utf-8"),
+        ) from None
+
+
+# --------------------------------------------------------------------------- configured
+
+
+def _configured(data: bytes, encoding: str) -> Text:
+    """Decode as a format's ``encoding`` says; ``auto`` tries UTF-8, then Windows-1252."""
+    for mark, codec in _UTF16_MARKS:
+        if data.startswith(mark):
+            if encoding not in ("auto", "utf-16"):
+                raise InputError(
+                    f"the file starts with a UTF-16 byte-order mark, but format.encoding is "
+                    f"{encoding}",
+                    1,
+                )
+            return _decode_as(data[len(mark) :], codec, f"{codec} (BOM)", len(mark))
+    if encoding == "utf-16":
+        # Without a mark, little-endian: what every common writer of UTF-16 files produces.
+        return _decode_as(data, "utf-16-le", "utf-16-le", 0)
+    if encoding in ("auto", "utf-8") and data.startswith(codecs.BOM_UTF8):
+        return _decode_as(data[len(codecs.BOM_UTF8) :], "utf-8", "utf-8 (with BOM)", 3)
+    if encoding == "auto":
+        try:
+            text = data.decode("utf-8")
+        except UnicodeDecodeError:
+            # Not UTF-8: a Windows program's export, in its ANSI code page.
+            return _decode_as(data, "cp1252", "cp1252", 0)
+        _check_binary(data, configured=True)
+        return Text(text, "utf-8")
+    return _decode_as(data, encoding, encoding, 0)
+
+
+def _decode_as(data: bytes, codec: str, label: str, skipped: int) -> Text:
+    """``data`` decoded with ``codec``; ``skipped``: the bytes of a mark before it."""
+    utf16 = codec.startswith("utf-16")
+    if not utf16:
+        _check_binary(data, configured=True)  # UTF-8 and Windows-1252 keep control bytes
+    try:
+        text = data.decode(codec)
+    except UnicodeDecodeError as exc:
+        bad = data[exc.start : exc.end].hex()
+        raise InputError(
+            f"the file is not valid {label} text: byte(s) 0x{bad} at offset "
+            f"{exc.start + skipped} cannot be decoded (set format.encoding to the file's encoding)",
+            _line_at(data, exc.start, codec),
+        ) from None
+    if utf16:
+        # The binary check works on bytes; as UTF-8 the text keeps its control characters
+        # and its lines, so the check and its line numbers hold.
+        _check_binary(text.encode("utf-8", errors="surrogatepass"), configured=True)
+    return Text(text, label)
+
+
+# --------------------------------------------------------------------------- binary
+
+
+def _check_binary(data: bytes, *, configured: bool) -> None:
+    """Refuse bytes that are not text: UTF-16, a NUL, or too many control bytes.
+
+    ``configured``: the file is read by an export format, whose ``encoding`` can
+    be set to UTF-16; ASCII text in UTF-16 is every other byte NUL, so the
+    message then says that rather than only "binary".
+    """
+    nul = data.find(b"\0")
+    if data.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
+        reason, offset = "the file is UTF-16 text, which reads as binary here; save it as UTF-8", 0
+    elif nul >= 0:
+        reason, offset = "the file looks binary, not text: it holds a NUL byte", nul
+    else:
+        controls = len(data) - len(data.translate(None, _CONTROL_BYTES))
+        if not controls or controls <= _CONTROL_SHARE * len(data):
+            return
+        offset = min(i for i in (data.find(bytes([b])) for b in _CONTROL_BYTES) if i >= 0)
+        reason = (
+            f"the file looks binary, not text: {controls} of its {len(data)} bytes "
+            f"are control characters (the first is on this line)"
+        )
+    if configured and data.count(0) * 3 > len(data):
+        reason += "; it may be UTF-16 text without a byte-order mark (set format.encoding: utf-16)"
+    raise InputError(reason, _line_at(data, offset))
