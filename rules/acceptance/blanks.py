@@ -6,7 +6,7 @@ from collections.abc import Iterator
 
 from calwarden.rules.acceptance.common import number, reading_finding, result_of
 from calwarden.rules.model import Kind
-from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Severity
 
 

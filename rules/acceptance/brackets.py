@@ -8,7 +8,7 @@ from dataclasses import dataclass
 
 from calwarden.rules.acceptance.common import check_passes
 from calwarden.rules.model import CHECK_KINDS, FIELD_KINDS, Reading
-from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Severity
 
 

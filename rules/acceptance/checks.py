@@ -13,7 +13,7 @@ from calwarden.rules.acceptance.common import (
     result_of,
 )
 from calwarden.rules.model import Kind
-from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding
 
 

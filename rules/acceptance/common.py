@@ -6,7 +6,7 @@ from collections.abc import Iterator
 
 from calwarden.rules.criteria import Range
 from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
-from calwarden.rules.registry import AnalyteContext
+from calwarden.rules.rule import AnalyteContext
 from calwarden.rules.verdict import Calibration, Finding, Flag, Limit, Result, Severity
 
 

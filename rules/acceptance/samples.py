@@ -17,7 +17,7 @@ from calwarden.rules.acceptance.common import (
     within,
 )
 from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
-from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Result, Severity
 
 #: Kinds a duplicate or spike may be made from.
