@@ -37,7 +37,11 @@ RULES: tuple[Rule, ...] = (
     brackets.bracket_frequency,
     brackets.bracket_closing,
     brackets.bracket_reportable,
+    brackets.bracket_blank,
+    blanks.blank_method_multiple,
+    checks.lcs_batch,
     # the samples' own results
+    samples.result_computable,
     samples.range_over,
     samples.range_on_curve,
     samples.range_under,

@@ -27,6 +27,7 @@ from typing import Any, Literal
 
 from pydantic import Field, field_validator
 
+from calwarden.daemon.outputs.verdict_json import add_repeat
 from calwarden.daemon.settings.section import Section
 from calwarden.daemon.stores.ledger import (
     Ledger,
@@ -367,10 +368,15 @@ def amend(document: dict[str, Any], assessment: Assessment) -> dict[str, Any]:
     status = document["status"]
     if status == "pass" and any(f["severity"] == "fail" for f in assessment.findings):
         status = "fail"
+    repeat = list(document.get("repeat", []))
+    for finding in assessment.findings:  # a control rejection rejects the analyte's run
+        if finding["severity"] == "fail":
+            repeat = add_repeat(repeat, "run", finding.get("analyte"), finding["message"])
     return {
         **document,
         "status": status,
         "findings": findings,
+        "repeat": repeat,
         "control_charts": list(assessment.series),
     }
 

@@ -2,7 +2,7 @@
 
 Stable keys (see README, "The verdict JSON"): ``status``, ``run``, ``source``,
 ``calwarden_version``, ``criteria_sha256``, ``findings``, ``calibrations``,
-``results``, ``error``. More keys may be added; none is removed or renamed.
+``results``, ``reruns``, ``repeat``, ``error``. More keys may be added; none is removed or renamed.
 """
 
 from __future__ import annotations
@@ -69,6 +69,7 @@ def _finding(finding: Finding, sample_ids: dict[int, str]) -> dict[str, Any]:
         "limit": [_number(end) for end in finding.limit] if finding.limit else None,
         "message": finding.message,
         "affected": [{"seq": seq, "sample_id": sample_ids.get(seq)} for seq in finding.affected],
+        "causes": [{"seq": seq, "sample_id": sample_ids.get(seq)} for seq in finding.causes],
     }
 
 
@@ -203,8 +204,25 @@ def verdict_to_json(
         "results": [_result(r) for r in verdict.results] if with_results else [],
         "additions": [_addition(a) for a in verdict.additions],
         "reruns": rerun_list(verdict),
+        "repeat": [
+            {"what": advice.what.value, "analyte": advice.analyte, "reasons": list(advice.reasons)}
+            for advice in verdict.repeats()
+        ],
         "error": verdict.error,
     }
+
+
+def add_repeat(
+    repeat: list[dict[str, Any]], what: str, analyte: str | None, reason: str
+) -> list[dict[str, Any]]:
+    """``repeat`` with ``reason`` added to its (what, analyte) entry, made when missing."""
+    entries = [dict(entry, reasons=list(entry["reasons"])) for entry in repeat]
+    for entry in entries:
+        if entry["what"] == what and entry["analyte"] == analyte:
+            if reason not in entry["reasons"]:
+                entry["reasons"].append(reason)
+            return entries
+    return [*entries, {"what": what, "analyte": analyte, "reasons": [reason]}]
 
 
 def rerun_list(verdict: Verdict) -> list[dict[str, Any]]:
