@@ -27,7 +27,8 @@ def blank_contamination(context: AnalyteContext) -> Iterator[Finding]:
     ICB/CCB below the LLOQ [memory]). A strongly negative blank is as wrong as
     a positive one, hence the absolute value. Settings: ``blank_limit``
     (default: the lowest non-zero standard), compared with the concentration
-    in the measured solution.
+    in the measured solution. What a failing blank means for the samples is
+    ``bracket.blank``'s (ICB/CCB) and ``blank.method_multiple``'s (method blank).
 
     Fails: CCB-3 Zn at 1.42 µg/L with a lowest standard of 0.5 µg/L.
     Passes: CCB-3 Zn at 0.03 µg/L.

@@ -45,7 +45,8 @@ def lcs_recovery(context: AnalyteContext) -> Iterator[Finding]:
 
     Why: the LCS carries a known amount through the whole preparation, so it
     shows losses or contamination of the method (US EPA 6010D / 6020B:
-    80–120 % [memory]). Settings: ``lcs_recovery_pct`` (80–120).
+    80–120 % [memory]). The samples of its batch are ``lcs.batch``'s. Settings:
+    ``lcs_recovery_pct`` (80–120).
 
     Fails: LCS-1 Cu recovered 71.5 %. Passes: 98.2 %.
     """
