@@ -209,7 +209,9 @@ class Verdict:
         analyte's run to be repeated: a failing run always says what to do.
         """
         reruns = {(r.analyte, r.seq) for r in self.reruns()}
-        kinds = {(r.analyte, r.seq): r.kind for r in self.results}
+        kinds: dict[tuple[str | None, int | None], Kind] = {
+            (r.analyte, r.seq): r.kind for r in self.results
+        }
         fails = [f for f in self.findings if f.severity is Severity.FAIL]
         carried = {
             (f.analyte, seq)
