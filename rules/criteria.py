@@ -61,6 +61,9 @@ class AnalyteCriteria(_Frozen):
     # --- blanks: below the lowest calibration level (6010D / 6020B: ICB/CCB < LLOQ) [memory].
     # None = the lowest non-zero calibration standard.
     blank_limit: float | None = Field(default=None, gt=0)
+    # A contaminated method blank: samples below this multiple of it are not reportable
+    # (common practice, the "10× rule" of US EPA data review [memory]).
+    method_blank_multiple: float = Field(default=10.0, gt=0)
     # --- internal standard: common practice between 6020B (70–120 %) and 200.8 (60–125 %).
     istd_recovery_pct: Range = (70.0, 130.0)
     # --- duplicates, spikes and control samples: 6010D / 6020B [memory].

@@ -11,6 +11,8 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, replace
 from statistics import fmean
 
+import numpy as np
+
 from calwarden.rules.acceptance.samples import suggested_dilution
 from calwarden.rules.calibration import (
     PARAMETERS,
@@ -55,6 +57,9 @@ FINDING_STAGES: dict[str, int] = {
     "lcs": 1,
     "istd": 1,
     "bracket": 2,
+    # consequences: a failed blank or LCS carried to the samples, whatever the prefix
+    "blank.method_multiple": 2,
+    "lcs.batch": 2,
     "replicate": 3,
 }
 _LAST_STAGE = 3
@@ -98,7 +103,9 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
     replicates: list[ReplicateGroup] = []
     for analyte, rows in by_analyte.items():
         rows.sort(key=lambda r: r.seq)
-        judged = _judge_analyte(analyte, tuple(rows), criteria.for_analyte(analyte), rules)
+        # Extreme numbers overflow quietly: result.computable turns them into findings.
+        with np.errstate(all="ignore"):
+            judged = _judge_analyte(analyte, tuple(rows), criteria.for_analyte(analyte), rules)
         findings.extend(judged.findings)
         if judged.calibration is not None:
             calibrations.append(judged.calibration)

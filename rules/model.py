@@ -78,6 +78,7 @@ class Reading:
     added: float | None = None
     run: str | None = None
     instrument: str | None = None
+    batch: str | None = None  # preparation batch: the LCS and method blank judge its samples
 
     def __post_init__(self) -> None:
         if not self.sample_id:

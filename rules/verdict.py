@@ -39,6 +39,11 @@ class Flag(StrEnum):
     QC_FAILED = "qc_failed"  # this QC sample (blank, LCS, duplicate, spike) is out of limits
     NOT_JUDGED = "not_judged"  # a QC comparison that could not be made
     REPLICATES_DISAGREE = "replicates_disagree"  # the injections of one sample scatter too much
+    BLANK_FAILED = "blank_failed"  # a calibration blank (ICB/CCB) next to it failed
+    BLANK_CONTAMINATED = "blank_contaminated"  # below the multiple of a contaminated method blank
+    LCS_FAILED = "lcs_failed"  # the LCS of its preparation batch failed
+    BEYOND_INTERVAL = "beyond_interval"  # more field samples than allowed since the last check
+    NOT_COMPUTABLE = "not_computable"  # a number of its result overflowed or is undefined
 
 
 #: Flags that make a field sample's result unreportable: it goes on the re-run list.
@@ -52,8 +57,24 @@ RERUN_FLAGS = frozenset(
         Flag.ISTD_OUT,
         Flag.NOT_QUANTIFIABLE,
         Flag.REPLICATES_DISAGREE,
+        Flag.BLANK_FAILED,
+        Flag.BLANK_CONTAMINATED,
+        Flag.LCS_FAILED,
+        Flag.BEYOND_INTERVAL,
+        Flag.NOT_COMPUTABLE,
     }
 )
+
+
+#: Results of sample material whose failed QC comparison puts them on the re-run list.
+_RERUN_WHEN_QC_FAILED = frozenset({Kind.DUP, Kind.MS, Kind.MSD, Kind.ADDITION})
+
+
+class Repeat(StrEnum):
+    """What must be repeated beyond single samples."""
+
+    CALIBRATION = "calibration"  # recalibrate, then re-run what the calibration quantitated
+    RUN = "run"  # the analyte's run (or the whole run) as it stands cannot be reported
 
 
 @dataclass(frozen=True, slots=True)
@@ -70,6 +91,8 @@ class Finding:
     limit: Limit | None = None
     flag: Flag | None = None  # put on the results listed in ``affected``
     affected: tuple[int, ...] = ()  # seqs of this analyte's results the finding concerns
+    # seqs of the QC readings whose failure this finding carries to the samples (consequences)
+    causes: tuple[int, ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -193,5 +216,63 @@ class Verdict:
     replicates: tuple[ReplicateGroup, ...] = ()
 
     def reruns(self) -> tuple[Result, ...]:
-        """Field-sample results that cannot be reported as they are."""
-        return tuple(r for r in self.results if RERUN_FLAGS.intersection(r.flags))
+        """Results that cannot be reported as they are, and failed QC made from a sample.
+
+        A duplicate, a matrix spike or a standard-addition series that failed its
+        own comparison is measured again first (common practice: re-analysis tells
+        an injection problem from the sample's matrix), so it is on the list too.
+        """
+        return tuple(
+            r
+            for r in self.results
+            if RERUN_FLAGS.intersection(r.flags)
+            or (r.kind in _RERUN_WHEN_QC_FAILED and Flag.QC_FAILED in r.flags)
+        )
+
+    def repeats(self) -> tuple[RepeatAdvice, ...]:
+        """What to repeat beyond the re-run list: a calibration, or an analyte's whole run.
+
+        A failed calibration, or a failed ICV (it verifies the calibration), asks for a
+        new calibration (US EPA 6010D / 6020B: recalibrate when the ICV fails [memory]).
+        Any other failing finding that neither puts a result on the re-run list nor is
+        carried to the samples by a consequence (``Finding.causes``) asks for the
+        analyte's run to be repeated: a failing run always says what to do.
+        """
+        reruns = {(r.analyte, r.seq) for r in self.reruns()}
+        kinds: dict[tuple[str | None, int | None], Kind] = {
+            (r.analyte, r.seq): r.kind for r in self.results
+        }
+        fails = [f for f in self.findings if f.severity is Severity.FAIL]
+        carried = {
+            (f.analyte, seq)
+            for f in fails
+            if any((f.analyte, a) in reruns for a in f.affected)
+            for seq in f.causes
+        }
+        advice: dict[tuple[Repeat, str | None], list[str]] = {}
+        for finding in fails:
+            key = (finding.analyte, finding.seq)
+            if finding.rule.startswith("calibration.") or (
+                finding.rule == "check.recovery" and kinds.get(key) is Kind.ICV
+            ):
+                what = Repeat.CALIBRATION
+            elif key in carried or any((finding.analyte, a) in reruns for a in finding.affected):
+                continue
+            else:
+                what = Repeat.RUN
+            reasons = advice.setdefault((what, finding.analyte), [])
+            if finding.message not in reasons:
+                reasons.append(finding.message)
+        return tuple(
+            RepeatAdvice(what, analyte, tuple(reasons))
+            for (what, analyte), reasons in advice.items()
+        )
+
+
+@dataclass(frozen=True, slots=True)
+class RepeatAdvice:
+    """One thing to repeat beyond single samples, with the findings that ask for it."""
+
+    what: Repeat
+    analyte: str | None  # None: the whole run
+    reasons: tuple[str, ...]

@@ -44,7 +44,7 @@ def test_summary_names_the_samples_to_rerun(capsys: pytest.CaptureFixture[str]) 
     main(["check", str(FAILING)])
     out = capsys.readouterr().out
     assert "BW-1124-18 (seq 38) — Cu: over range; dilute to 5x in total" in out
-    assert "Samples to re-run (13)" in out
+    assert "Samples to re-run (14)" in out  # the failed duplicate is measured again
 
 
 def test_out_writes_verdict_flagged_copy_and_report(tmp_path: Path) -> None:

@@ -212,7 +212,7 @@ def test_exported_constants() -> None:
     assert MAX_FILE_BYTES == 200 * 1024 * 1024
     assert REQUIRED_FIELDS == ("seq", "sample_id", "kind", "analyte", "response")
     assert NATIVE_FIELDS[:5] == REQUIRED_FIELDS
-    assert len(NATIVE_FIELDS) == 15
+    assert len(NATIVE_FIELDS) == 16
 
 
 # --------------------------------------------------------------------------- bad files
@@ -347,3 +347,12 @@ def test_arbitrary_input_raises_only_input_error(content: bytes | str) -> None:
     except InputError:
         return
     assert isinstance(run, Run)
+
+
+def test_batch_column_is_read() -> None:
+    """The optional batch column gives each reading its preparation batch; empty means none."""
+    text = (
+        b"seq,sample_id,kind,analyte,response,batch\n1,S-1,sample,Zn,10,B-1\n2,S-2,sample,Zn,11,\n"
+    )
+    run = normalise(decode_table(text))
+    assert [r.batch for r in run.readings] == ["B-1", None]

@@ -33,6 +33,10 @@ ALL_CASES = _load()
 def _run_case(case: dict[str, Any]) -> Any:
     header, *base_rows = BASE.splitlines()
     rows = [] if case.get("base") == "none" else base_rows
+    extra = list(case.get("extra_columns") or [])
+    if extra:  # columns after the base ones: empty in the base rows, given in the case's rows
+        header = ",".join([header, *extra])
+        rows = [row + "," * len(extra) for row in rows]
     text = "\n".join([header, *rows, *(case.get("rows") or "").splitlines()]) + "\n"
     run = normalise(decode_table(text.encode("utf-8")), run_name=case["name"])
     return evaluate(run, build_criteria({"defaults": case.get("criteria", {})}))

@@ -144,6 +144,7 @@ def file_alert(
         "more_findings": max(0, len(findings) - LISTED_LIMIT),
         "reruns": list(document.get("reruns", []))[:LISTED_LIMIT],
         "more_reruns": max(0, len(document.get("reruns", [])) - LISTED_LIMIT),
+        "repeat": [repeat_line(r) for r in document.get("repeat", [])],
         "control_series": _fired_series(document, findings),
         "evaluated_at": evaluated_at,
         "verdict": verdict_path,
@@ -258,7 +259,23 @@ _WHY = {
     "istd_out": "its internal standard is out of limits",
     "replicates_disagree": "its replicate injections disagree",
     "not_quantifiable": "no concentration gives its response",
+    "blank_failed": "a calibration blank next to it failed",
+    "blank_contaminated": "below the multiple of a contaminated method blank",
+    "lcs_failed": "the LCS of its batch failed",
+    "beyond_interval": "run after more samples than allowed since a check standard",
+    "not_computable": "its result cannot be computed",
+    "qc_failed": "its QC comparison failed (measure it again)",
 }
+
+
+def repeat_line(entry: Mapping[str, Any]) -> str:
+    """``Repeat the calibration of Zn: <first reason>`` (or the run, of the whole run)."""
+    what = "the calibration" if entry.get("what") == "calibration" else "the run"
+    scope = f" of {entry['analyte']}" if entry.get("analyte") else ""
+    reasons = list(entry.get("reasons") or [])
+    why = f": {reasons[0]}" if reasons else ""
+    more = f" (and {len(reasons) - 1} more)" if len(reasons) > 1 else ""
+    return f"Repeat {what}{scope}{why}{more}"
 
 
 def _rerun_line(rerun: Mapping[str, Any]) -> str:
@@ -315,6 +332,9 @@ def _sections(alert: Mapping[str, Any]) -> tuple[str, list[_Section]]:
             reruns.append(f"… and {alert['more_reruns']} more (see the report)")
         if reruns:
             sections.append(_Section(f"Samples to re-run ({len(reruns)})", tuple(reruns)))
+        repeat = [str(line) for line in alert.get("repeat") or []]
+        if repeat:
+            sections.append(_Section(f"To repeat ({len(repeat)})", tuple(repeat)))
     elif kind == "error":
         opening = (
             f"The file {where} could not be judged, so none of its results has been "

@@ -27,6 +27,7 @@ from typing import Literal
 
 from pydantic import Field, field_validator
 
+from calwarden.daemon.outputs.verdict_json import add_repeat
 from calwarden.daemon.outputs.verdict_model import ControlChartEntry, FindingEntry, VerdictDocument
 from calwarden.daemon.settings.section import Section
 from calwarden.daemon.stores.control import ControlHistory
@@ -355,6 +356,7 @@ def assess(
                     "limit": None,
                     "message": f"control chart {violation.rule}: {violation.message}",
                     "affected": [],
+                    "causes": [],
                 }
             )
     return Assessment(points, tuple(new_limits), tuple(findings), tuple(summaries))
@@ -368,10 +370,15 @@ def amend(document: VerdictDocument, assessment: Assessment) -> VerdictDocument:
     status = document["status"]
     if status == "pass" and any(f["severity"] == "fail" for f in assessment.findings):
         status = "fail"
+    repeat = list(document.get("repeat", []))
+    for finding in assessment.findings:  # a control rejection rejects the analyte's run
+        if finding["severity"] == "fail":
+            repeat = add_repeat(repeat, "run", finding.get("analyte"), finding["message"])
     return {
         **document,
         "status": status,
         "findings": findings,
+        "repeat": repeat,
         "control_charts": list(assessment.series),
     }
 

@@ -22,6 +22,12 @@ FLAG_WORDS = {
     "istd_out": "internal standard out of limits",
     "not_quantifiable": "no concentration on the curve gives this response",
     "replicates_disagree": "its replicate injections disagree",
+    "blank_failed": "a calibration blank next to it failed",
+    "blank_contaminated": "below the multiple of a contaminated method blank",
+    "lcs_failed": "the LCS of its preparation batch failed",
+    "beyond_interval": "more samples than allowed since the last check standard",
+    "not_computable": "its result cannot be computed",
+    "qc_failed": "its QC comparison failed (measure it again)",
 }
 _WORD = {"pass": "PASS", "fail": "FAIL", "error": "ERROR"}
 
@@ -68,6 +74,20 @@ def _reruns(document: VerdictDocument) -> list[str]:
         if entry.get("suggested_dilution"):
             line += f"; dilute to {_number(entry['suggested_dilution'])}x in total"
         lines.append(line)
+    return lines
+
+
+def _repeat(document: VerdictDocument) -> list[str]:
+    """What to repeat beyond single samples (a calibration, a run); nothing when there is none."""
+    repeat = document.get("repeat") or []
+    if not repeat:
+        return []
+    lines = _heading(f"To repeat ({len(repeat)})")
+    for entry in repeat:
+        what = "calibration" if entry["what"] == "calibration" else "run"
+        scope = f" of {entry['analyte']}" if entry.get("analyte") else " (whole run)"
+        lines.append(f"{what}{scope}:")
+        lines += [f"  {reason}" for reason in entry.get("reasons", [])]
     return lines
 
 
@@ -243,7 +263,7 @@ def render(document: VerdictDocument, *, full: bool = True) -> str:
             f"criteria {str(document.get('criteria_sha256') or '-')[:12]}"
         )
     if document["status"] != "error":
-        lines += _reruns(document) + _findings(document)
+        lines += _reruns(document) + _repeat(document) + _findings(document)
         if full:
             lines += _calibrations(document) + _replicates(document) + _results(document)
             lines += _charts(document)

@@ -2,9 +2,9 @@
 
 Stable keys (see README, "The verdict JSON"): ``status``, ``run``, ``source``,
 ``calwarden_version``, ``criteria_sha256``, ``findings``, ``calibrations``,
-``results``, ``error``. Added since: ``replicates`` (one entry per sample injected
-more than once: the reported mean, its uncertainty, the %RSD, the injections' seqs).
-More keys may be added; none is removed or renamed.
+``results``, ``reruns``, ``repeat``, ``error``. Added since: ``replicates`` (one entry
+per sample injected more than once: the reported mean, its uncertainty, the %RSD, the
+injections' seqs). More keys may be added; none is removed or renamed.
 The document's shape, key by key, is ``verdict_model.VerdictDocument``: a new
 key is added there too.
 """
@@ -22,6 +22,7 @@ from calwarden.daemon.outputs.verdict_model import (
     CalibrationEntry,
     FindingEntry,
     FitEntry,
+    RepeatEntry,
     ReplicateEntry,
     RerunEntry,
     ResultEntry,
@@ -84,6 +85,7 @@ def _finding(finding: Finding, sample_ids: dict[int, str]) -> FindingEntry:
         "limit": [_number(end) for end in finding.limit] if finding.limit else None,
         "message": finding.message,
         "affected": [{"seq": seq, "sample_id": sample_ids.get(seq)} for seq in finding.affected],
+        "causes": [{"seq": seq, "sample_id": sample_ids.get(seq)} for seq in finding.causes],
     }
 
 
@@ -241,8 +243,27 @@ def verdict_to_json(
         "additions": [_addition(a) for a in verdict.additions],
         "replicates": [_replicate(g) for g in verdict.replicates],
         "reruns": rerun_list(verdict),
+        "repeat": [
+            {"what": advice.what.value, "analyte": advice.analyte, "reasons": list(advice.reasons)}
+            for advice in verdict.repeats()
+        ],
         "error": verdict.error,
     }
+
+
+def add_repeat(
+    repeat: list[RepeatEntry], what: str, analyte: str | None, reason: str
+) -> list[RepeatEntry]:
+    """``repeat`` with ``reason`` added to its (what, analyte) entry, made when missing."""
+    entries: list[RepeatEntry] = [
+        {"what": e["what"], "analyte": e["analyte"], "reasons": list(e["reasons"])} for e in repeat
+    ]
+    for entry in entries:
+        if entry["what"] == what and entry["analyte"] == analyte:
+            if reason not in entry["reasons"]:
+                entry["reasons"].append(reason)
+            return entries
+    return [*entries, {"what": what, "analyte": analyte, "reasons": [reason]}]
 
 
 def rerun_list(verdict: Verdict) -> list[RerunEntry]:

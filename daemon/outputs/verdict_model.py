@@ -59,6 +59,7 @@ class FindingEntry(TypedDict):
     limit: list[float | None] | None  # [low, high]; either end may be open
     message: str
     affected: list[Affected]
+    causes: list[Affected]  # the failed QC readings a consequence carries to the samples
 
 
 class FitEntry(TypedDict):
@@ -173,6 +174,14 @@ class ReplicateEntry(TypedDict):
     flags: list[str]
 
 
+class RepeatEntry(TypedDict):
+    """More than single samples to measure again: a calibration, or a run."""
+
+    what: str  # "calibration" | "run"
+    analyte: str | None  # None: the whole run
+    reasons: list[str]  # the findings' messages
+
+
 class RerunEntry(TypedDict):
     """One injection to re-run."""
 
@@ -215,6 +224,7 @@ class VerdictDocument(TypedDict):
     additions: list[AdditionEntry]
     replicates: list[ReplicateEntry]
     reruns: list[RerunEntry]
+    repeat: list[RepeatEntry]
     error: str | None  # why the file could not be judged (status "error")
     # Written by the daemon only:
     control_charts: NotRequired[list[ControlChartEntry]]

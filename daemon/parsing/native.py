@@ -62,6 +62,7 @@ OPTIONAL_FIELDS: tuple[str, ...] = (
     "added",
     "run",
     "instrument",
+    "batch",
 )
 #: Every column the native format knows, required first.
 NATIVE_FIELDS: tuple[str, ...] = REQUIRED_FIELDS + OPTIONAL_FIELDS
@@ -214,7 +215,7 @@ def normalise(
         (
             seq, sample_id, kind, analyte, response,
             nominal, istd, istd_response, dilution, unit,
-            acquired, parent, added, run, instrument,
+            acquired, parent, added, run, instrument, batch,
         ) = cells  # fmt: skip
         # Fast path: plain conversions. Anything odd goes to _check_cells, which
         # applies the strict rules one cell at a time and raises the precise error.
@@ -252,6 +253,7 @@ def normalise(
                 added=v_added,
                 run=run or None,
                 instrument=instrument or None,
+                batch=batch or None,
             )
         except InputError:
             # A number the fast path let through (nan, inf, 1e999) gets the precise message.

@@ -19,7 +19,7 @@ from calwarden.rules.model import Kind
 #: Native fields a layout may fill (the columns of the native format).
 MAPPABLE_FIELDS = (
     "seq", "sample_id", "kind", "analyte", "response", "nominal", "istd", "istd_response",
-    "dilution", "unit", "acquired", "parent", "added", "run", "instrument",
+    "dilution", "unit", "acquired", "parent", "added", "run", "instrument", "batch",
 )  # fmt: skip
 
 

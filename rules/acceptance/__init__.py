@@ -1,13 +1,1 @@
-"""The acceptance rules, one module per area; importing this package registers them all."""
-
-from calwarden.rules.acceptance import (
-    additions,
-    blanks,
-    brackets,
-    calibration,
-    checks,
-    replicates,
-    samples,
-)
-
-__all__ = ["additions", "blanks", "brackets", "calibration", "checks", "replicates", "samples"]
+"""The acceptance rules, one module per area; ``calwarden.rules.registry.RULES`` lists them all."""

@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from calwarden.rules.acceptance.common import number
-from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Severity
 
 

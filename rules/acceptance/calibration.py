@@ -7,7 +7,7 @@ from collections.abc import Iterator
 from calwarden.rules.acceptance.common import number
 from calwarden.rules.calibration import MandelResult, Model
 from calwarden.rules.model import Kind
-from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Severity
 
 _NO_CURVE_NEEDED = frozenset({Kind.BLANK, Kind.CAL, Kind.ADDITION})

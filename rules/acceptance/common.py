@@ -6,7 +6,7 @@ from collections.abc import Iterator
 
 from calwarden.rules.criteria import Range
 from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
-from calwarden.rules.registry import AnalyteContext
+from calwarden.rules.rule import AnalyteContext
 from calwarden.rules.verdict import Calibration, Finding, Flag, Limit, Result, Severity
 
 
@@ -56,6 +56,49 @@ def check_passes(context: AnalyteContext, reading: Reading) -> bool:
     """Whether a check standard recovered within its limits (the bracketing rules ask too)."""
     recovery = check_recovery(context, reading)
     return recovery is not None and within(recovery, check_limits(context, reading.kind))
+
+
+def istd_recovery_pct(context: AnalyteContext, reading: Reading) -> float | None:
+    """The reading's internal-standard response over the standards' mean, in percent."""
+    calibration = context.calibration
+    if calibration is None or not calibration.istd_reference or reading.istd_response is None:
+        return None
+    return 100.0 * reading.istd_response / calibration.istd_reference
+
+
+def istd_fails(context: AnalyteContext, reading: Reading) -> bool:
+    """Whether ``istd.recovery`` fails the reading: internal standard out, or the wrong basis."""
+    calibration = context.calibration
+    if calibration is None:
+        return False
+    if not calibration.same_basis(reading):
+        return True
+    recovery = istd_recovery_pct(context, reading)
+    return recovery is not None and not within(recovery, context.criteria.istd_recovery_pct)
+
+
+def blank_limit(context: AnalyteContext) -> float | None:
+    """The blank limit: ``blank_limit``, else the lowest non-zero standard (None: no curve)."""
+    calibration = context.calibration
+    return context.criteria.blank_limit or (calibration.range_low if calibration else None)
+
+
+def blank_fails(context: AnalyteContext, reading: Reading) -> bool | None:
+    """Whether a blank reads, in absolute value, at or above the blank limit; None: not judged."""
+    limit = blank_limit(context)
+    result = context.results.get(reading.seq)
+    if limit is None or result is None or result.measured is None:
+        return None
+    return abs(result.measured) >= limit
+
+
+def same_batch(qc: Reading, sample: Reading) -> bool:
+    """Whether a batch QC sample (LCS, method blank) speaks for ``sample``.
+
+    Without a batch on either side the QC sample speaks for the whole run: a
+    sample whose batch is not known is counted in every batch (the cautious reading).
+    """
+    return qc.batch is None or sample.batch is None or qc.batch == sample.batch
 
 
 def result_of(context: AnalyteContext, reading: Reading) -> Result | None:

@@ -5,8 +5,8 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from calwarden.rules.acceptance.common import number
-from calwarden.rules.registry import AnalyteContext, rule
 from calwarden.rules.replicates import curve_of, replicate_group, replicate_sets
+from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Severity
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
 
 from calwarden.rules.acceptance.common import (
@@ -17,7 +18,7 @@ from calwarden.rules.acceptance.common import (
     within,
 )
 from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
-from calwarden.rules.registry import AnalyteContext, rule
+from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Result, Severity
 
 #: Kinds a duplicate or spike may be made from.
@@ -38,6 +39,52 @@ def suggested_dilution(measured: float, top: float, current: float) -> float | N
         if measured / step <= _TARGET_SHARE_OF_TOP * top:
             return current * step
     return None
+
+
+@rule("result.computable", "Every result is a finite number")
+def result_computable(context: AnalyteContext) -> Iterator[Finding]:
+    """A result whose numbers overflow or are undefined is a failure, never a silent gap.
+
+    Why: every input number is finite, yet arithmetic on extreme ones is not:
+    a dilution of 1e308 times any concentration overflows to infinity, and a
+    standard addition with ``added`` of 1e308 gives no number at all. Such a
+    result would show as an empty concentration with nothing said; a QC tool
+    that let it pass would pass a sample nobody can report (common practice:
+    a result that cannot be calculated is not reportable). Judged for every
+    result (response used, concentration measured and reported, uncertainty).
+    No settings.
+
+    Fails: S-1 Zn with a dilution of 1e308 (reported concentration infinite).
+    Passes: S-1 Zn with a dilution of 10.
+    """
+    for seq, result in context.results.items():
+        broken = [
+            name
+            for name, value in (
+                ("response", result.signal),
+                ("concentration in the measured solution", result.measured),
+                ("reported concentration", result.concentration),
+                ("uncertainty", result.uncertainty),
+            )
+            if value is not None and not math.isfinite(value)
+        ]
+        if not broken:
+            continue
+        reading = next((r for r in context.readings if r.seq == seq), None)
+        numbers = f"dilution {result.dilution:g}"
+        if reading is not None and reading.added is not None:
+            numbers += f", added {reading.added:g}"
+        yield Finding(
+            "result.computable",
+            Severity.FAIL,
+            f"{result.sample_id} {context.analyte}: the {' and the '.join(broken)} cannot be "
+            f"computed from the row's numbers ({numbers}): check them and re-run",
+            analyte=context.analyte,
+            sample_id=result.sample_id,
+            seq=seq,
+            flag=Flag.NOT_COMPUTABLE,
+            affected=(seq,),
+        )
 
 
 @rule("range.over", "No result lies above the highest calibration standard")
