@@ -34,8 +34,8 @@ from calwarden.rules.verdict import (
     Result,
     Severity,
     StandardPoint,
-    Status,
     Verdict,
+    status_of,
 )
 
 #: Kinds that are not read off the curve one by one: calibration points and addition points.
@@ -79,9 +79,8 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
 
     # Stable sort: within one seq the analytes keep the run's order.
     results.sort(key=_seq_of)
-    failed = any(f.severity is Severity.FAIL for f in findings)
     return Verdict(
-        status=Status.FAIL if failed else Status.PASS,
+        status=status_of(findings),
         run=run.name,
         instrument=run.instrument,
         findings=tuple(findings),

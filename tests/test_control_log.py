@@ -334,7 +334,7 @@ def test_version_reverted_to_earlier_content_has_its_points(lab: Callable[..., L
 
 def test_no_limits_before_baseline_points(lab: Callable[..., Lab]) -> None:
     """A series gets no limits until it has ``baseline_points`` points."""
-    one = lab({"baseline_points": 6, "baseline_runs": 1})
+    one = lab({"baseline_points": 6, "baseline_runs": 2})
     runs = varied_runs(3, seed=1)
     one.judge("a.csv", runs[0])
     assert one.ledger.active_limits(ZN_CCV) is None

@@ -412,7 +412,7 @@ def _chart(args: argparse.Namespace) -> int:
         if args.chart_command == "export":
             ledger = Ledger(ledger_path, read_only=True)
             try:
-                rows = export_rows(ledger, chosen)
+                rows = export_rows(ledger, chosen, config.control)
             finally:
                 ledger.close()
             stream = args.file.open("w", encoding="utf-8", newline="") if args.file else sys.stdout

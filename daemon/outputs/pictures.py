@@ -15,15 +15,14 @@ from pathlib import Path
 from typing import Any
 
 from calwarden.daemon.control_log.log import (
-    ControlSettings,
     SeriesFilter,
     series_limits,
     series_name,
 )
 from calwarden.daemon.outputs.files import atomic_write
+from calwarden.daemon.settings.control import ControlSettings
 from calwarden.daemon.stores.ledger import Ledger, SeriesKey, StoredLimits
 from calwarden.rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
-from calwarden.rules.verdict import Severity
 
 CHARTS_FOLDER = "charts"
 _HISTORY = 1000  # points read for one chart (it draws the last chart_points of them)
@@ -63,7 +62,8 @@ def _limits_note(stored: StoredLimits | None, fixed: bool) -> str:
         return "fixed centre and SD from the configuration"
     if stored is None:
         return ""
-    return f"limits from {stored.n} baseline points, set {stored.set_at[:10]}"
+    runs = f" of {stored.runs} runs" if stored.runs else ""
+    return f"limits from {stored.n} baseline points{runs}, set {stored.set_at[:10]}"
 
 
 def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> Any:
@@ -93,7 +93,8 @@ def build_chart(ledger: Ledger, settings: ControlSettings, key: SeriesKey) -> An
             limits,
         )
         for violation in evaluate_group((series,), settings.rules):
-            worst = REJECTION if violation.severity is Severity.FAIL else WARNING
+            rejects = violation.rule in settings.rejecting and settings.rejection_severity == "fail"
+            worst = REJECTION if rejects else WARNING
             for ref in violation.points:
                 if status[ref.index] != REJECTION:
                     status[ref.index] = worst

@@ -17,6 +17,7 @@ from calwarden.rules.calibration import Fit
 from calwarden.rules.verdict import (
     AdditionSeries,
     Calibration,
+    ControlChart,
     Finding,
     Flag,
     Result,
@@ -189,7 +190,7 @@ def verdict_to_json(
     sample_ids = {r.seq: r.sample_id for r in verdict.results if r.seq is not None}
     for calibration in verdict.calibrations:
         sample_ids.update({s.seq: s.sample_id for s in calibration.standards})
-    return {
+    document = {
         "schema_version": SCHEMA_VERSION,
         "status": verdict.status.value,
         "run": verdict.run,
@@ -204,6 +205,25 @@ def verdict_to_json(
         "additions": [_addition(a) for a in verdict.additions],
         "reruns": rerun_list(verdict),
         "error": verdict.error,
+    }
+    if verdict.control_charts:
+        document["control_charts"] = [_control_chart(c) for c in verdict.control_charts]
+    return document
+
+
+def _control_chart(chart: ControlChart) -> dict[str, Any]:
+    return {
+        "instrument": chart.instrument,
+        "analyte": chart.analyte,
+        "kind": chart.kind,
+        "level": chart.level,
+        "points": chart.points,
+        "centre": _number(chart.centre),
+        "sd": _number(chart.sd),
+        "limits": chart.limits,
+        "sd_within": _number(chart.sd_within),
+        "sd_between": _number(chart.sd_between),
+        "runs": chart.runs,
     }
 
 

@@ -41,7 +41,7 @@ def timestamp(moment: datetime | None = None) -> str:
     return (moment or datetime.now(UTC)).astimezone(UTC).isoformat(timespec="milliseconds")
 
 
-SCHEMA_VERSION = 2  # 2: the alert outbox (a version-1 ledger is upgraded in place)
+SCHEMA_VERSION = 3  # 2: the alert outbox; 3: limits split between and within runs
 LEDGER_NAME = "ledger.sqlite3"
 
 _SCHEMA = """
@@ -284,6 +284,9 @@ class StoredLimits:
     last_point: int | None
     set_at: str
     active: bool
+    sd_within: float | None = None  # schema 3: the split of sd (None: not known)
+    sd_between: float | None = None
+    runs: int = 0  # baseline runs behind the limits (0: not known)
 
 
 @dataclass(frozen=True, slots=True)
@@ -312,6 +315,9 @@ class NewLimits:
     first_point: int | None
     last_point: int | None
     set_at: str
+    sd_within: float | None = None  # schema 3: the split of sd (None: not known)
+    sd_between: float | None = None
+    runs: int = 0
 
 
 _COLUMNS = (
@@ -366,9 +372,9 @@ class Ledger:
                     )
                     # Version 1 lacked only the outbox tables, just created above.
                     self._db.execute(
-                        "UPDATE meta SET value = ? WHERE key = 'schema_version' AND value = '1'",
-                        (str(SCHEMA_VERSION),),
+                        "UPDATE meta SET value = '2' WHERE key = 'schema_version' AND value = '1'"
                     )
+                    _migrate_limits_split(self._db)
                 found = self.meta("schema_version")
                 if found != str(SCHEMA_VERSION):
                     raise LedgerError(
@@ -689,7 +695,8 @@ class Ledger:
         )
         self._db.execute(
             "INSERT INTO control_limits (instrument, analyte, kind, level, centre, sd, n, "
-            "source, first_point, last_point, set_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            "source, first_point, last_point, set_at, sd_within, sd_between, runs) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (
                 *_key_values(limits.key),
                 limits.centre,
@@ -699,6 +706,9 @@ class Ledger:
                 limits.first_point,
                 limits.last_point,
                 limits.set_at,
+                limits.sd_within,
+                limits.sd_between,
+                limits.runs,
             ),
         )
 
@@ -803,19 +813,39 @@ class Ledger:
     def limits_history(self, key: SeriesKey) -> list[StoredLimits]:
         """Every set of limits the series has had, oldest first."""
         rows = self._rows(
-            "SELECT id, centre, sd, n, source, first_point, last_point, set_at, active "
-            "FROM control_limits WHERE instrument = ? AND analyte = ? AND kind = ? "
-            "AND level = ? ORDER BY id",
+            "SELECT id, centre, sd, n, source, first_point, last_point, set_at, active, "
+            "sd_within, sd_between, runs FROM control_limits WHERE instrument = ? "
+            "AND analyte = ? AND kind = ? AND level = ? ORDER BY id",
             _key_values(key),
         )
         return [
-            StoredLimits(*row[:8], active=bool(row[8]))  # type: ignore[arg-type, misc]
+            StoredLimits(*row[:8], bool(row[8]), *row[9:])  # type: ignore[arg-type, call-arg]
             for row in rows
         ]
 
     def active_limits(self, key: SeriesKey) -> StoredLimits | None:
         history = self.limits_history(key)
         return next((limits for limits in reversed(history) if limits.active), None)
+
+
+# --------------------------------------------------------------- migration 2 → 3
+#: Columns version 3 adds to control_limits: the SD split within and between runs
+#: and the number of baseline runs (rules/control.py, run_baseline). Limits stored
+#: before have NULL (split unknown) and runs 0 (not widened), as they were judged.
+_LIMITS_SPLIT_COLUMNS = (
+    ("sd_within", "REAL"),
+    ("sd_between", "REAL"),
+    ("runs", "INTEGER NOT NULL DEFAULT 0"),
+)
+
+
+def _migrate_limits_split(db: sqlite3.Connection) -> None:
+    """Version 2 → 3, in the opening transaction: add the limits' split columns."""
+    present = {str(row[1]) for row in db.execute("PRAGMA table_info(control_limits)")}
+    for name, declaration in _LIMITS_SPLIT_COLUMNS:
+        if name not in present:
+            db.execute(f"ALTER TABLE control_limits ADD COLUMN {name} {declaration}")
+    db.execute("UPDATE meta SET value = '3' WHERE key = 'schema_version' AND value = '2'")
 
 
 def _key_values(key: SeriesKey) -> tuple[str, str, str, str]:
