@@ -173,7 +173,7 @@ def prediction_factor(runs: int) -> float:
     centre (the prediction interval for one new observation of a normal sample,
     e.g. Hahn & Meeker, Statistical Intervals, 1991 [memory]). The factor makes
     a limit at 3 SD exceeded as often as the normal 3 SD tail (0.27 %):
-    t⁻¹(Φ(3); r − 1)·√(1 + 1/r) / 3; about 1.22 for 20 runs, 1.10 for 50, → 1.
+    t⁻¹(Φ(3); r − 1)·√(1 + 1/r) / 3; about 1.18 for 20 runs, 1.06 for 50, → 1.
     The degrees of freedom are those of the between-run mean square, which
     dominates a run mean's variance (our simplification). 1 for fewer than 2
     runs (no baseline from runs is known) and for fixed limits.
