@@ -662,6 +662,28 @@ def test_export_writes_a_header_and_one_row_per_point(
         assert float(row["z"]) == pytest.approx((point.value - limits.centre) / limits.sd, abs=1e-4)
 
 
+def test_export_gives_fixed_limits_their_centre_sd_and_z(
+    lab: Callable[..., Lab], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A series with ``control.fixed`` limits exports their centre, SD and each point's z."""
+    fixed = {"analyte": "Zn", "kind": "CCV", "centre": 100.0, "sd": 2.5}
+    one = lab({"fixed": [fixed]})
+    one.judge("run.csv", metals_run("RUN-A"))
+    config = tmp_path / "fixed.yaml"
+    config.write_text(
+        "control:\n  fixed:\n    - {analyte: Zn, kind: CCV, centre: 100.0, sd: 2.5}\n",
+        encoding="utf-8",
+    )
+    rows = export(
+        ["--out", str(one.plan.out), "--config", str(config), "--analyte", "Zn", "--kind", "CCV"],
+        capsys,
+    )
+    assert len(rows) == 2
+    for row in rows:
+        assert (float(row["centre"]), float(row["sd"])) == (100.0, 2.5)
+        assert float(row["z"]) == pytest.approx((float(row["value"]) - 100.0) / 2.5, abs=1e-4)
+
+
 def test_export_filters_by_analyte_and_kind(
     lab: Callable[..., Lab], capsys: pytest.CaptureFixture[str]
 ) -> None:
