@@ -159,8 +159,9 @@ class ControlLimits:
         return (mean - self.centre) / self.run_sd(count)
 
 
-#: Widening is computed for this rule multiple (the 3 SD of 1-3s).
-_WIDENING_AT = 3.0
+#: Widening is computed for this rule multiple: the 3.5 SD of 1-3.5s, the rule that
+#: rejects by default, so that its false-rejection rate is the nominal one.
+_WIDENING_AT = 3.5
 
 
 def prediction_factor(runs: int) -> float:
@@ -172,8 +173,10 @@ def prediction_factor(runs: int) -> float:
     r − 1 degrees of freedom, scaled by √(1 + 1/r) for the uncertainty of the
     centre (the prediction interval for one new observation of a normal sample,
     e.g. Hahn & Meeker, Statistical Intervals, 1991 [memory]). The factor makes
-    a limit at 3 SD exceeded as often as the normal 3 SD tail (0.27 %):
-    t⁻¹(Φ(3); r − 1)·√(1 + 1/r) / 3; about 1.18 for 20 runs, 1.06 for 50, → 1.
+    a limit at 3.5 SD (the default rejection, 1-3.5s) exceeded as often as the
+    normal 3.5 SD tail (0.047 %): t⁻¹(Φ(3.5); r − 1)·√(1 + 1/r) / 3.5; about
+    1.24 for 20 runs, 1.08 for 50, → 1. Narrower limits (2 and 3 SD) are then
+    a little wider than needed, which only makes their warnings rarer.
     The degrees of freedom are those of the between-run mean square, which
     dominates a run mean's variance (our simplification). 1 for fewer than 2
     runs (no baseline from runs is known) and for fixed limits.
