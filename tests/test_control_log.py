@@ -799,3 +799,27 @@ def test_chart_draws_the_chosen_series_as_png(
     assert drawn.name == "Zn--CCV--25_ug_L.png"
     assert drawn.read_bytes().startswith(b"\x89PNG")
     assert str(drawn) in capsys.readouterr().out
+
+
+def test_a_version_2_ledger_gains_the_limits_split_and_keeps_its_limits(tmp_path: Path) -> None:
+    """Opening a schema-2 ledger adds sd_within, sd_between and runs; old limits read as unsplit."""
+    path = tmp_path / LEDGER_NAME
+    Ledger(path).close()
+    with sqlite3.connect(path) as db:
+        for column in ("sd_within", "sd_between", "runs"):
+            db.execute(f"ALTER TABLE control_limits DROP COLUMN {column}")
+        db.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
+        db.execute(
+            "INSERT INTO control_limits (instrument, analyte, kind, level, centre, sd, n, source, "
+            "set_at) VALUES ('BWL-ICPMS-2', 'Zn', 'CCV', '25 µg/L', 100.0, 1.5, 20, 'baseline', "
+            "'2026-11-01T00:00:00.000+00:00')"
+        )
+    upgraded = Ledger(path)
+    try:
+        assert upgraded.meta("schema_version") == "3"
+        limits = upgraded.active_limits(ZN_CCV)
+        assert limits is not None
+        assert (limits.centre, limits.sd, limits.sd_within, limits.runs) == (100.0, 1.5, None, 0)
+        assert stored_to_limits(limits).run_sd(3) == 1.5  # judged as before: not split, not widened
+    finally:
+        upgraded.close()
