@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import stat
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -73,13 +74,15 @@ def judge_file(
     summary_only: bool = False,
     data: bytes | None = None,
     instrument: str | None = None,
+    refine: Callable[[Run, Verdict], Verdict] | None = None,
 ) -> Judgement:
     """Judge one file; broken input gives an ``error`` verdict, never an exception.
 
     ``summary_only`` leaves the document's ``results`` empty (for the terminal summary).
     ``data`` is the file's bytes when the caller has read them already (so the
     hash recorded is of exactly what was judged). ``instrument`` names the
-    instrument of a run whose file does not.
+    instrument of a run whose file does not. ``refine`` (the daemon's control
+    log) turns the run's verdict into the final one before it is serialised.
 
     A ConfigError (e.g. a disabled rule id that does not exist) propagates:
     it is the configuration's fault, not the file's.
@@ -109,6 +112,8 @@ def judge_file(
             parsed, run=dataclasses.replace(parsed.run, instrument=instrument)
         )
     verdict = evaluate(parsed.run, config.criteria)
+    if refine is not None:
+        verdict = refine(parsed.run, verdict)
     document = verdict_to_json(
         verdict,
         source_path=str(path),

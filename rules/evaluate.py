@@ -39,8 +39,8 @@ from calwarden.rules.verdict import (
     Result,
     Severity,
     StandardPoint,
-    Status,
     Verdict,
+    status_of,
 )
 
 #: Kinds that are not read off the curve one by one: calibration points and addition points.
@@ -117,9 +117,8 @@ def evaluate(run: Run, criteria: Criteria) -> Verdict:
     # the findings keep the analytes' and the rules' order.
     results.sort(key=_seq_of)
     findings.sort(key=lambda finding: finding_stage(finding.rule))
-    failed = any(f.severity is Severity.FAIL for f in findings)
     return Verdict(
-        status=Status.FAIL if failed else Status.PASS,
+        status=status_of(findings),
         run=run.name,
         instrument=run.instrument,
         findings=tuple(findings),

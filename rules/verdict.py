@@ -201,6 +201,28 @@ class AdditionSeries:
         return self.outcome.fit.r_squared if self.outcome else None
 
 
+def status_of(findings: tuple[Finding, ...] | list[Finding]) -> Status:
+    """A judged run's status: ``fail`` when any finding fails, else ``pass``."""
+    return Status.FAIL if any(f.severity is Severity.FAIL for f in findings) else Status.PASS
+
+
+@dataclass(frozen=True, slots=True)
+class ControlChart:
+    """One control chart this run added points to, as the verdict summarises it."""
+
+    instrument: str
+    analyte: str
+    kind: str
+    level: str
+    points: int  # the series' points, this run's included
+    centre: float | None
+    sd: float | None  # of one observation
+    limits: str | None  # "baseline" or "fixed"; None while the series has none
+    sd_within: float | None = None
+    sd_between: float | None = None
+    runs: int | None = None  # baseline runs behind the limits
+
+
 @dataclass(frozen=True, slots=True)
 class Verdict:
     """The whole judgement of a run."""
@@ -214,6 +236,7 @@ class Verdict:
     additions: tuple[AdditionSeries, ...] = ()
     error: str | None = None
     replicates: tuple[ReplicateGroup, ...] = ()
+    control_charts: tuple[ControlChart, ...] = ()  # only when judged against a control log
 
     def reruns(self) -> tuple[Result, ...]:
         """Results that cannot be reported as they are, and failed QC made from a sample.

@@ -100,7 +100,7 @@ def test_a_version_1_ledger_gains_the_outbox_and_keeps_its_records(tmp_path: Pat
         db.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
     upgraded = Database(path)
     try:
-        assert upgraded.meta("schema_version") == "2"
+        assert upgraded.meta("schema_version") == "3"
         assert Outbox(upgraded).outbox_counts().files == 0
     finally:
         upgraded.close()

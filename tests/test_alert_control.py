@@ -56,7 +56,7 @@ FIXED_CD = {"fixed": [{"analyte": "Cd", "kind": "CCV", "centre": 90.0, "sd": 1.0
 
 @pytest.fixture
 def control_alert(tmp_path: Path) -> Iterator[EmailMessage]:
-    """The message of a passing run whose Cd CCVs break a fixed 1-3s limit (a warning)."""
+    """The message of a passing run whose Cd CCVs break a fixed 1-3.5s limit (a warning)."""
     watching = _watch(tmp_path, {**FIXED_CD, "rejection_severity": "warn"}, {})
     watcher = next(watching)
     try:
@@ -72,7 +72,7 @@ def test_a_control_rule_on_a_passing_run_raises_a_control_alert(
 ) -> None:
     """A rejection rule set to warn on a passing run still raises an alert of kind control."""
     assert str(control_alert["Subject"]).startswith("[calwarden] CONTROL ")
-    assert "1-3s" in str(control_alert["Subject"])
+    assert "1-3.5s" in str(control_alert["Subject"])
     assert control_alert["X-Calwarden-Alert"] == "control"
 
 
@@ -91,11 +91,11 @@ def test_a_control_alert_shows_the_chart_of_the_series_inline(
 
 def test_a_1_2s_warning_alone_raises_no_alert(tmp_path: Path) -> None:
     """1-2s is left out of control_rules by default: a run with only 1-2s raises nothing."""
-    # Centre 100, SD 1.2: the Cd CCVs (98.6, 97.2, 97.1 %) sit within 3 SD, two beyond 2.
+    # Centre 100, SD 1.1: the Cd CCVs (98.6, 97.2, 97.1 %) have their run mean at -2.2 SD.
     watching = _watch(
         tmp_path,
         {
-            "fixed": [{"analyte": "Cd", "kind": "CCV", "centre": 100.0, "sd": 1.2}],
+            "fixed": [{"analyte": "Cd", "kind": "CCV", "centre": 100.0, "sd": 1.1}],
             "rules": ["1-2s"],
         },
         {},

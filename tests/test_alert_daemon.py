@@ -42,10 +42,10 @@ from waiting import wait_for
 import calwarden.daemon.intake.watcher as watcher_module
 from calwarden.daemon.alerts.sender import AlertSender
 from calwarden.daemon.alerts.settings import AlertSettings
-from calwarden.daemon.control_log.log import ControlSettings
 from calwarden.daemon.intake.accept import Intake, Outcome
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.settings.config import WatchPlan, build_config, plan_watch
+from calwarden.daemon.settings.control import ControlSettings
 from calwarden.daemon.stores.database import LEDGER_NAME
 from calwarden.daemon.stores.ledger import Ledger
 from calwarden.daemon.stores.records import NewEvaluation

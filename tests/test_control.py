@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from calwarden.rules.control import (
+    BASELINE_RUNS,
     BASELINE_SIZE,
     EWMA_LAMBDA,
     EWMA_WIDTH,
@@ -27,8 +28,16 @@ from calwarden.rules.control import (
     evaluate_series,
     ewma_chart,
     ewma_violations,
+    prediction_factor,
+    run_baseline,
 )
-from calwarden.rules.verdict import Severity
+from calwarden.rules.control_verdict import (
+    ControlGroup,
+    ControlHistory,
+    ControlPolicy,
+    with_control,
+)
+from calwarden.rules.verdict import Finding, Severity, Status, Verdict
 
 UNIT = ControlLimits.fixed(centre=0.0, sd=1.0)
 
@@ -94,11 +103,12 @@ def test_westgard_rule_follows_its_published_definition(case: Case) -> None:
 
 def test_every_rule_has_an_id_summary_and_cited_definition() -> None:
     """Each rule carries its stable id, a one-line summary and the 1981 source."""
-    assert list(WESTGARD_RULES) == ["1-2s", "1-3s", "2-2s", "R-4s", "4-1s", "10-x"]
+    assert list(WESTGARD_RULES) == ["1-2s", "1-3s", "1-3.5s", "2-2s", "R-4s", "4-1s", "10-x"]
     for rule_id, rule in WESTGARD_RULES.items():
         assert rule.id == rule_id
         assert rule.summary and "\n" not in rule.summary
-        assert "Clin Chem 1981;27:493–501" in (rule.find.__doc__ or "")
+        source = "Basic QC Practices" if rule_id == "1-3.5s" else "Clin Chem 1981;27:493–501"
+        assert source in (rule.find.__doc__ or "")
 
 
 def test_only_1_2s_is_a_warning() -> None:
@@ -172,8 +182,9 @@ ACROSS_CASES = [
     # (rule, level 1, level 2, runs of both, triggers, why)
     ("2-2s", [0.1, 2.3], [0.2, 2.5], ["R01", "R02"], True, "both levels beyond +2 SD in R02"),
     ("R-4s", [0.1, 2.2], [0.3, -2.3], ["R01", "R02"], True, "+2 SD and -2 SD across levels"),
-    ("4-1s", [1.2, 1.3], [1.4, 1.1], ["R01", "R02"], True, "two levels over two runs"),
-    ("10-x", [0.2] * 5, [0.4] * 5, ["R01", "R02", "R03", "R04", "R05"], True, "five runs"),
+    # Levels of one run share its calibration: 4-1s and 10-x count runs, not levels.
+    ("4-1s", [1.2, 1.3], [1.4, 1.1], ["R01", "R02"], False, "two levels over two runs"),
+    ("10-x", [0.2] * 5, [0.4] * 5, ["R01", "R02", "R03", "R04", "R05"], False, "five runs"),
     ("4-1s", [1.2, 1.3], [1.4, -0.1], ["R01", "R02"], False, "only three beyond +1 SD"),
 ]
 
@@ -392,3 +403,138 @@ def test_ewma_refuses_a_lambda_outside_0_1() -> None:
     """λ must lie in (0, 1]."""
     with pytest.raises(ValueError, match="lambda"):
         ewma_chart(drifting(3, seed=27, per_point=0.0), lam=0.0)
+
+
+# --- limits between and within runs ---------------------------------------------------------
+
+
+def one_way_numpy(runs: list[list[float]]) -> tuple[float, float, float]:
+    """Mean, within-run and between-run SD by the one-way ANOVA formulas (ISO 5725-2 [memory])."""
+    values = np.concatenate([np.array(r) for r in runs])
+    sizes = np.array([len(r) for r in runs])
+    means = np.array([np.mean(r) for r in runs])
+    k, total = len(runs), len(values)
+    msw = sum(float(np.sum((np.array(r) - m) ** 2)) for r, m in zip(runs, means, strict=True))
+    msw /= total - k
+    msb = float(np.sum(sizes * (means - values.mean()) ** 2)) / (k - 1)
+    n0 = (total - float(np.sum(sizes**2)) / total) / (k - 1)
+    return float(values.mean()), float(np.sqrt(msw)), float(np.sqrt(max(0.0, (msb - msw) / n0)))
+
+
+def points_of(runs: list[list[float]]) -> list[ControlPoint]:
+    order = iter(range(10_000))
+    return [ControlPoint(v, f"R{i:02d}", next(order)) for i, r in enumerate(runs) for v in r]
+
+
+def test_run_baseline_equals_the_one_way_anova_in_numpy() -> None:
+    """Unbalanced runs: centre, within and between SD equal the numpy ANOVA formulas."""
+    rng = np.random.default_rng(41)
+    runs = [list(100 + rng.normal(0, 0.7) + rng.normal(0, 1.0, size=n)) for n in [3, 2, 3, 1] * 5]
+    limits = run_baseline(points_of(runs)).limits
+    assert limits is not None
+    centre, within, between = one_way_numpy(runs)
+    assert limits.centre == pytest.approx(centre, rel=1e-12)
+    assert limits.sd_within == pytest.approx(within, rel=1e-9)
+    assert limits.sd_between == pytest.approx(between, rel=1e-9)
+    assert limits.sd == pytest.approx(np.hypot(within, between), rel=1e-9)
+    assert (limits.runs, limits.n) == (20, 45)
+
+
+def test_run_baseline_recovers_known_components() -> None:
+    """On 2,000 simulated runs of 3 points (between SD 0.5, within 1.0) the split is found."""
+    rng = np.random.default_rng(42)
+    runs = [list(100 + rng.normal(0, 0.5) + rng.normal(0, 1.0, size=3)) for _ in range(2000)]
+    limits = run_baseline(points_of(runs)).limits
+    assert limits is not None and limits.sd_within is not None and limits.sd_between is not None
+    assert limits.sd_within == pytest.approx(1.0, rel=0.03)
+    assert limits.sd_between == pytest.approx(0.5, rel=0.1)
+
+
+def test_one_point_per_run_gives_the_sample_sd_all_between_runs() -> None:
+    """Runs of one point each: the SD is numpy's ddof=1 SD and the split is unknown."""
+    values = [99.1, 100.4, 100.9, 98.7, 101.2]
+    limits = run_baseline(points_of([[v] for v in values])).limits
+    assert limits is not None
+    assert limits.sd == pytest.approx(float(np.std(values, ddof=1)), rel=1e-12)
+    assert limits.sd_within is None and limits.run_sd(1) == pytest.approx(
+        limits.sd * limits.widening
+    )
+
+
+def test_prediction_factor_is_the_t_quantile_at_the_3_5_sd_tail() -> None:
+    """For 20 runs: t⁻¹(Φ(3.5); 19)·√(1 + 1/20)/3.5 (scipy), about 1.24; 1 for fixed limits."""
+    from scipy.stats import norm, t
+
+    expected = float(t.ppf(norm.cdf(3.5), 19)) * np.sqrt(1 + 1 / 20) / 3.5
+    assert prediction_factor(BASELINE_RUNS) == pytest.approx(expected, rel=1e-12)
+    assert 1.2 < expected < 1.25
+    assert prediction_factor(0) == 1.0 and prediction_factor(1000) < 1.01
+
+
+def test_widened_limits_give_the_nominal_false_rate_for_a_new_run() -> None:
+    """Simulated 20-run baselines: a new run passes 3.5 widened SDs about 0.047 % of the time."""
+    rng = np.random.default_rng(43)
+    trials = 200_000
+    base = rng.normal(size=(trials, BASELINE_RUNS))
+    new = rng.normal(size=trials)
+    z = (new - base.mean(axis=1)) / (base.std(axis=1, ddof=1) * prediction_factor(BASELINE_RUNS))
+    assert float(np.mean(np.abs(z) > 3.5)) == pytest.approx(0.000465, abs=0.00015)
+
+
+def test_a_run_is_judged_by_its_mean_and_the_sd_of_a_run_mean() -> None:
+    """Three points of one run give one value: their mean, in SDs of √(between² + within²/3)."""
+    limits = ControlLimits.fixed(centre=100.0, sd=1.25, sd_within=1.0)  # between 0.75
+    data = ControlSeries(
+        "CCV Zn 25",
+        tuple(ControlPoint(v, "R01", i, f"CCV-{i + 1}") for i, v in enumerate([101, 102, 103])),
+        limits,
+    )
+    (value,) = data.run_values()
+    assert (value.value, value.count, value.label, value.index) == (102.0, 3, "CCV-3", 2)
+    assert value.z == pytest.approx(2.0 / np.sqrt(0.75**2 + 1.0 / 3))
+
+
+def test_4_1s_does_not_count_points_of_one_run() -> None:
+    """Four points beyond +1 SD from two runs are two run values: no 4-1s (the old one fired)."""
+    data = series([1.5, 1.6, 1.4, 1.7], runs=["R01", "R01", "R02", "R02"])
+    assert not evaluate_series(data, active={"4-1s"})
+    assert evaluate_series(series([1.5, 1.6, 1.4, 1.7]), active={"4-1s"})
+
+
+# --- control findings into the verdict ------------------------------------------------------
+
+
+def _verdict(status: Status = Status.PASS) -> Verdict:
+    return Verdict(status, "R02", "ICP-1", (Finding("check.recovery", Severity.WARN, "x"),), (), ())
+
+
+def _history(z: float) -> ControlHistory:
+    data = series([0.1, z], name="CCV Zn 25")  # run R02's point is the new one (order 2)
+    return ControlHistory(first_new=2, groups=(ControlGroup("Zn", (data,), {2: 28}),))
+
+
+def test_with_control_adds_the_new_runs_findings_and_derives_the_status() -> None:
+    """A run value at +4 SD adds one failing control.1-3.5s finding and fails the verdict."""
+    judged = with_control(_verdict(), _history(4.0), ControlPolicy())
+    assert judged.status is Status.FAIL
+    (finding,) = [f for f in judged.findings if f.rule.startswith("control.")]
+    assert (finding.rule, finding.severity, finding.seq, finding.value) == (
+        "control.1-3.5s",
+        Severity.FAIL,
+        28,
+        4.0,
+    )
+    assert judged.findings[0].rule == "check.recovery"  # the run's own findings first
+
+
+def test_with_control_warning_rules_keep_the_run_passing() -> None:
+    """A run value at +3.2 SD is a 1-3s warning by default: the verdict still passes."""
+    judged = with_control(_verdict(), _history(3.2), ControlPolicy())
+    assert judged.status is Status.PASS
+    assert [f.rule for f in judged.findings[1:]] == ["control.1-3s"]
+
+
+def test_with_control_leaves_an_error_verdict_alone() -> None:
+    """A file that could not be judged keeps its error verdict."""
+    broken = Verdict(Status.ERROR, None, None, (), (), (), error="bad file")
+    assert with_control(broken, _history(9.0), ControlPolicy()) is broken

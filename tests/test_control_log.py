@@ -25,7 +25,7 @@ from structlog.testing import capture_logs
 from waiting import wait_for
 
 from calwarden.daemon.cli.main import main
-from calwarden.daemon.control_log.log import EXPORT_COLUMNS
+from calwarden.daemon.control_log.log import EXPORT_COLUMNS, stored_to_limits
 from calwarden.daemon.intake.accept import Intake, Outcome
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.pipeline import judge_file
@@ -48,6 +48,7 @@ CCV_1, CCV_2 = "CCV-1", "CCV-2"  # seq 19 and 28 of the metals run
 ANALYTES = ("Zn", "Cu", "Pb", "Cd")
 SETTLE = 0.1
 DEADLINE = 15.0
+BASELINE_RUNS = 20  # the default baseline_runs
 
 Scale = dict[tuple[str, str], float]  # (sample_id, analyte) -> factor on its response
 
@@ -166,8 +167,11 @@ def varied_runs(count: int, seed: int, sd: float = 0.004) -> list[bytes]:
     return [metals_run(f"RUN-{seed}-{i:02d}", zn_ccv(*factors[i])) for i in range(count)]
 
 
-def fixed_zn_ccv(z_of_ccv_2: float, **control: Any) -> dict[str, Any]:
-    """Fixed Zn CCV limits putting the unmodified run's CCV-1 at z 0 and CCV-2 at ``z_of_ccv_2``."""
+def fixed_zn_ccv(z_of_run: float, **control: Any) -> dict[str, Any]:
+    """Fixed Zn CCV limits: CCV-1 at the centre, the unmodified run's mean at ``z_of_run``.
+
+    Without ``sd_within`` a run's mean is judged by the fixed SD itself.
+    """
     first, second = zn_ccv_values(metals_run("probe"))
     assert second > first  # 101.2 % and 100.4 % in the fixture
     fixed = {
@@ -175,9 +179,26 @@ def fixed_zn_ccv(z_of_ccv_2: float, **control: Any) -> dict[str, Any]:
         "kind": "CCV",
         "level": "25 µg/L",
         "centre": first,
-        "sd": (second - first) / z_of_ccv_2,
+        "sd": ((first + second) / 2 - first) / z_of_run,
     }
     return {"fixed": [fixed], **control}
+
+
+def one_way(runs: list[list[float]]) -> tuple[float, float, float]:
+    """Grand mean, within-run and between-run SD by the one-way ANOVA formulas, in numpy.
+
+    MSW = Σ(x − run mean)²/(N − k), MSB = Σ nᵢ(run mean − mean)²/(k − 1),
+    s_b² = (MSB − MSW)/n₀ (ISO 5725-2 [memory]).
+    """
+    values = np.concatenate([np.array(r) for r in runs])
+    sizes = np.array([len(r) for r in runs])
+    means = np.array([np.mean(r) for r in runs])
+    k, total = len(runs), len(values)
+    msw = sum(np.sum((np.array(r) - m) ** 2) for r, m in zip(runs, means, strict=True))
+    msw /= total - k
+    msb = np.sum(sizes * (means - values.mean()) ** 2) / (k - 1)
+    n0 = (total - np.sum(sizes**2) / total) / (k - 1)
+    return float(values.mean()), float(np.sqrt(msw)), float(np.sqrt(max(0.0, (msb - msw) / n0)))
 
 
 # --------------------------------------------------------------------------- the observations
@@ -339,7 +360,7 @@ def test_version_reverted_to_earlier_content_has_its_points(lab: Callable[..., L
 
 def test_no_limits_before_baseline_points(lab: Callable[..., Lab]) -> None:
     """A series gets no limits until it has ``baseline_points`` points."""
-    one = lab({"baseline_points": 6, "baseline_runs": 1})
+    one = lab({"baseline_points": 6, "baseline_runs": 2})
     runs = varied_runs(3, seed=1)
     one.judge("a.csv", runs[0])
     assert one.ledger.control.active_limits(ZN_CCV) is None
@@ -360,47 +381,55 @@ def test_no_limits_before_baseline_runs(lab: Callable[..., Lab]) -> None:
     one.judge("c.csv", runs[2])
     limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None
-    assert limits.n == 5  # the shortest start from 3 runs: 2 + 2 + run 3's CCV-1
+    assert limits.n == 6 and limits.runs == 3  # whole runs: 2 + 2 + 2
 
 
-def test_baseline_is_mean_and_sample_sd_of_its_points(lab: Callable[..., Lab]) -> None:
-    """The limits set are numpy's mean and SD (ddof=1) of exactly the first points."""
-    one = lab({"baseline_points": 4, "baseline_runs": 2})
-    runs = varied_runs(2, seed=3)
-    values = np.array([v for data in runs for v in zn_ccv_values(data)])
-    assert np.all(np.abs(values - values.mean()) <= 3 * values.std(ddof=1))  # none excluded
+def test_baseline_is_the_one_way_decomposition_of_its_points(lab: Callable[..., Lab]) -> None:
+    """The limits set are the one-way ANOVA (numpy) of exactly the first runs' points."""
+    one = lab({"baseline_points": 4, "baseline_runs": 4})
+    runs = varied_runs(4, seed=3)
+    by_run = [zn_ccv_values(data) for data in runs]
+    centre, within, between = one_way(by_run)
+    sd = np.hypot(within, between)
+    values = np.concatenate(by_run)
+    assert np.all(np.abs(values - centre) <= 3 * sd)  # none excluded
     outcomes = one.judge_runs(runs)
     limits = one.ledger.control.active_limits(ZN_CCV)
     assert limits is not None
-    assert (limits.source, limits.n) == ("baseline", 4)
-    assert limits.centre == pytest.approx(values.mean(), rel=1e-12)
-    assert limits.sd == pytest.approx(values.std(ddof=1), rel=1e-9)
+    assert (limits.source, limits.n, limits.runs) == ("baseline", 8, 4)
+    assert limits.centre == pytest.approx(centre, rel=1e-12)
+    assert limits.sd_within == pytest.approx(within, rel=1e-9)
+    assert limits.sd_between == pytest.approx(between, rel=1e-9, abs=1e-12)
+    assert limits.sd == pytest.approx(sd, rel=1e-9)
     (summary,) = [
         s
         for s in verdict(outcomes[-1])["control_charts"]
         if (s["analyte"], s["kind"]) == ("Zn", "CCV")
     ]
-    assert (summary["limits"], summary["points"]) == ("baseline", 4)
+    assert (summary["limits"], summary["points"], summary["runs"]) == ("baseline", 8, 4)
     assert summary["centre"] == pytest.approx(limits.centre, rel=1e-12)
 
 
 def test_baseline_leaves_out_a_point_beyond_3_sd_once(lab: Callable[..., Lab]) -> None:
     """A baseline point beyond 3 SD of the first estimate is left out and the limits recomputed."""
-    one = lab({"baseline_points": 12, "baseline_runs": 6})
+    one = lab({"baseline_points": 24, "baseline_runs": 12})
     rng = np.random.default_rng(4)
-    factors = 1.0 + rng.normal(0.0, 0.002, size=(6, 2))
-    factors[3, 1] = 1.05  # run 4's CCV-2 Zn reads about 106 %: in its run's limits, an outlier here
-    runs = [metals_run(f"RUN-X-{i}", zn_ccv(*factors[i])) for i in range(6)]
-    values = np.array([v for data in runs for v in zn_ccv_values(data)])
-    first_z = np.abs(values - values.mean()) / values.std(ddof=1)
+    factors = 1.0 + rng.normal(0.0, 0.002, size=(12, 2))
+    factors[3, 1] = 1.06  # run 4's CCV-2 Zn reads about 107 %: in its run's limits, an outlier here
+    runs = [metals_run(f"RUN-X-{i}", zn_ccv(*factors[i])) for i in range(12)]
+    by_run = [zn_ccv_values(data) for data in runs]
+    values = np.concatenate(by_run)
+    centre, within, between = one_way(by_run)
+    first_z = np.abs(values - centre) / np.hypot(within, between)
     assert list(np.flatnonzero(first_z > 3.0)) == [7]  # exactly the outlier
-    kept = np.delete(values, 7)
+    kept = [r if i != 3 else r[:1] for i, r in enumerate(by_run)]
     outcomes = one.judge_runs(runs)
     assert outcomes[3].status == "pass"  # the outlier met its own run's criteria
     limits = one.ledger.control.active_limits(ZN_CCV)
-    assert limits is not None and limits.n == 11
-    assert limits.centre == pytest.approx(kept.mean(), rel=1e-12)
-    assert limits.sd == pytest.approx(kept.std(ddof=1), rel=1e-9)
+    assert limits is not None and limits.n == 23
+    centre, within, between = one_way(kept)
+    assert limits.centre == pytest.approx(centre, rel=1e-12)
+    assert limits.sd == pytest.approx(np.hypot(within, between), rel=1e-9)
 
 
 def test_baseline_is_locked_once_set(lab: Callable[..., Lab]) -> None:
@@ -428,10 +457,12 @@ def test_point_failing_its_own_run_is_never_in_a_baseline(lab: Callable[..., Lab
     logged = one.ledger.control.series_points(ZN_CCV)
     assert [p.accepted for p in logged] == [True, False, True, True, True, True]
     limits = one.ledger.control.active_limits(ZN_CCV)
-    assert limits is not None and limits.n == 4
-    used = np.array([values[0][0], values[1][0], values[1][1], values[2][0]])
-    assert limits.centre == pytest.approx(used.mean(), rel=1e-12)
-    assert limits.sd == pytest.approx(used.std(ddof=1), rel=1e-9)
+    # Whole runs until 4 points: run 1's CCV-1, run 2's two, then run 3's two.
+    assert limits is not None and (limits.n, limits.runs) == (5, 3)
+    used = [[values[0][0]], [values[1][0], values[1][1]], [values[2][0], values[2][1]]]
+    centre, within, between = one_way(used)
+    assert limits.centre == pytest.approx(centre, rel=1e-12)
+    assert limits.sd == pytest.approx(np.hypot(within, between), rel=1e-9)
 
 
 def test_fixed_limits_are_used_instead_of_a_baseline(lab: Callable[..., Lab]) -> None:
@@ -452,45 +483,44 @@ def test_fixed_limits_are_used_instead_of_a_baseline(lab: Callable[..., Lab]) ->
 # --------------------------------------------------------------------------- Westgard findings
 
 
-def beyond_3_sd_run(one: Lab) -> tuple[Outcome, float]:
-    """Set a baseline from two runs, then judge a run whose CCV-2 Zn is far above it; its z."""
-    one.judge_runs(varied_runs(2, seed=8))
-    limits = one.ledger.control.active_limits(ZN_CCV)
-    assert limits is not None
-    data = metals_run("RUN-HIGH", zn_ccv(1.0, 1.04))
-    value = zn_ccv_values(data)[1]
-    assert value < 110.0  # within its own run's limits: the chart alone sees it
-    z = (value - limits.centre) / limits.sd
-    assert z > 3.0
+def beyond_limit_run(one: Lab) -> tuple[Outcome, float]:
+    """Set a baseline from 20 runs, then judge a run whose Zn CCVs read 4 % high; its run z."""
+    one.judge_runs(varied_runs(BASELINE_RUNS, seed=8))
+    stored = one.ledger.control.active_limits(ZN_CCV)
+    assert stored is not None and stored.runs == BASELINE_RUNS
+    data = metals_run("RUN-HIGH", zn_ccv(1.04, 1.04))
+    values = zn_ccv_values(data)
+    assert max(values) < 110.0  # within its own run's limits: the chart alone sees it
+    z = stored_to_limits(stored).run_z(float(np.mean(values)), len(values))
+    assert z > 3.5
     return one.judge("high.csv", data), z
 
 
-def test_ccv_beyond_3_sd_fails_the_run(lab: Callable[..., Lab]) -> None:
-    """With a baseline set, a CCV beyond +3 SD gives a failing control.1-3s and fails the run."""
-    one = lab({"baseline_points": 4, "baseline_runs": 2})
-    outcome, z = beyond_3_sd_run(one)
+def test_run_beyond_3_5_sd_fails_the_run(lab: Callable[..., Lab]) -> None:
+    """With a baseline set, a run whose CCV mean is beyond +3.5 SD fails by control.1-3.5s."""
+    one = lab()
+    outcome, z = beyond_limit_run(one)
     document = verdict(outcome)
-    (finding,) = [f for f in control_findings(document) if f["rule"] == "control.1-3s"]
-    assert (finding["severity"], finding["analyte"]) == ("fail", "Zn")
-    assert (finding["sample_id"], finding["seq"]) == (CCV_2, 28)
+    (finding,) = [f for f in control_findings(document) if f["analyte"] == "Zn"]
+    assert (finding["rule"], finding["severity"]) == ("control.1-3.5s", "fail")
+    assert (finding["sample_id"], finding["seq"]) == (CCV_2, 28)  # the run's last CCV
     assert finding["value"] == pytest.approx(z, abs=1e-4)
     assert document["status"] == "fail" and outcome.status == "fail"
-    (evaluation,) = one.ledger.files.latest()
-    assert evaluation.outcome == "fail"
+    assert one.ledger.files.latest()[0].outcome == "fail"
 
 
 def test_rejection_severity_warn_keeps_the_run_passing(lab: Callable[..., Lab]) -> None:
-    """With ``rejection_severity: warn`` a 1-3s is a warning and the run still passes."""
-    one = lab({"baseline_points": 4, "baseline_runs": 2, "rejection_severity": "warn"})
-    outcome, _ = beyond_3_sd_run(one)
+    """With ``rejection_severity: warn`` a 1-3.5s is a warning and the run still passes."""
+    one = lab({"rejection_severity": "warn"})
+    outcome, _ = beyond_limit_run(one)
     document = verdict(outcome)
-    (finding,) = [f for f in control_findings(document) if f["rule"] == "control.1-3s"]
+    (finding,) = [f for f in control_findings(document) if f["rule"] == "control.1-3.5s"]
     assert finding["severity"] == "warn"
     assert document["status"] == "pass" and outcome.status == "pass"
 
 
-def test_ccv_beyond_2_sd_is_a_warning(lab: Callable[..., Lab]) -> None:
-    """A CCV between 2 and 3 SD gives one control.1-2s warning and the run passes."""
+def test_run_beyond_2_sd_is_a_warning(lab: Callable[..., Lab]) -> None:
+    """A run whose CCV mean lies between 2 and 3 SD gives one control.1-2s warning; it passes."""
     one = lab(fixed_zn_ccv(2.5))
     outcome = one.judge("run.csv", metals_run("RUN-A"))
     document = verdict(outcome)
@@ -504,18 +534,18 @@ def test_ccv_beyond_2_sd_is_a_warning(lab: Callable[..., Lab]) -> None:
     assert document["status"] == "pass"
 
 
-def test_point_beyond_3_sd_gives_the_rejection_alone(lab: Callable[..., Lab]) -> None:
-    """A CCV at +4 SD gives one control.1-3s, not also the 1-2s warning at the same point."""
+def test_run_beyond_4_sd_gives_the_strictest_rule_alone(lab: Callable[..., Lab]) -> None:
+    """A run mean at +4 SD gives one control.1-3.5s, not also 1-3s and 1-2s at the same point."""
     one = lab(fixed_zn_ccv(4.0))
     document = verdict(one.judge("run.csv", metals_run("RUN-A")))
     assert [(f["rule"], f["sample_id"]) for f in control_findings(document)] == [
-        ("control.1-3s", CCV_2)
+        ("control.1-3.5s", CCV_2)
     ]
     assert document["status"] == "fail"
 
 
 def test_rules_not_listed_do_not_fire(lab: Callable[..., Lab]) -> None:
-    """With 1-2s and 1-3s left out of ``control.rules``, a CCV at +4 SD raises nothing."""
+    """With the single-value rules left out of ``control.rules``, a run at +4 SD raises nothing."""
     one = lab(fixed_zn_ccv(4.0, rules=["2-2s", "R-4s", "4-1s", "10-x"]))
     document = verdict(one.judge("run.csv", metals_run("RUN-A")))
     assert control_findings(document) == []
@@ -542,20 +572,20 @@ def test_istd_series_are_not_judged_by_default(lab: Callable[..., Lab]) -> None:
 
 
 def test_istd_series_are_judged_when_kinds_lists_them(lab: Callable[..., Lab]) -> None:
-    """With ISTD in ``kinds`` the same points give control.1-3s failures."""
+    """With ISTD in ``kinds`` the same points give control.1-3.5s failures."""
     one = lab(istd_fixed(kinds=["ISTD"]))
     document = verdict(one.judge("lc.csv", HERBICIDES_FILE.read_bytes()))
     rules = {f["rule"] for f in control_findings(document)}
-    assert "control.1-3s" in rules
+    assert "control.1-3.5s" in rules
     assert {f["analyte"] for f in control_findings(document)} == {"atrazine-d5"}
     assert document["status"] == "fail"
 
 
 def test_violation_of_an_earlier_run_is_not_repeated(lab: Callable[..., Lab]) -> None:
-    """A later in-control run's verdict does not repeat the 1-3s an earlier run completed."""
-    one = lab(fixed_zn_ccv(1.0))  # the unmodified CCV-2 sits at +1 SD
+    """A later in-control run's verdict does not repeat the 1-3.5s an earlier run completed."""
+    one = lab(fixed_zn_ccv(1.0))  # the unmodified run's mean sits at +1 SD
     high = verdict(one.judge("high.csv", metals_run("RUN-HIGH", zn_ccv(1.0, 1.05))))
-    assert "control.1-3s" in {f["rule"] for f in control_findings(high)}
+    assert "control.1-3.5s" in {f["rule"] for f in control_findings(high)}
     later = verdict(one.judge("later.csv", metals_run("RUN-LATER")))
     assert control_findings(later) == []
     assert later["status"] == "pass"
@@ -579,7 +609,7 @@ def test_control_finding_through_the_watcher(tmp_path: Path) -> None:
     assert watcher.fault is None
     (outcome,) = outcomes
     assert outcome.status == "fail" and ZN_CCV in outcome.series
-    assert "control.1-3s" in {f["rule"] for f in control_findings(verdict(outcome))}
+    assert "control.1-3.5s" in {f["rule"] for f in control_findings(verdict(outcome))}
     ledger = Ledger.open(plan.state_dir / LEDGER_NAME, read_only=True)
     try:
         assert len(ledger.control.series_points(ZN_CCV)) == 2
@@ -637,6 +667,28 @@ def test_export_writes_a_header_and_one_row_per_point(
     for row, point in zip(zn, one.ledger.control.series_points(ZN_CCV), strict=True):
         assert float(row["value"]) == point.value
         assert float(row["z"]) == pytest.approx((point.value - limits.centre) / limits.sd, abs=1e-4)
+
+
+def test_export_gives_fixed_limits_their_centre_sd_and_z(
+    lab: Callable[..., Lab], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A series with ``control.fixed`` limits exports their centre, SD and each point's z."""
+    fixed = {"analyte": "Zn", "kind": "CCV", "centre": 100.0, "sd": 2.5}
+    one = lab({"fixed": [fixed]})
+    one.judge("run.csv", metals_run("RUN-A"))
+    config = tmp_path / "fixed.yaml"
+    config.write_text(
+        "control:\n  fixed:\n    - {analyte: Zn, kind: CCV, centre: 100.0, sd: 2.5}\n",
+        encoding="utf-8",
+    )
+    rows = export(
+        ["--out", str(one.plan.out), "--config", str(config), "--analyte", "Zn", "--kind", "CCV"],
+        capsys,
+    )
+    assert len(rows) == 2
+    for row in rows:
+        assert (float(row["centre"]), float(row["sd"])) == (100.0, 2.5)
+        assert float(row["z"]) == pytest.approx((float(row["value"]) - 100.0) / 2.5, abs=1e-4)
 
 
 def test_export_filters_by_analyte_and_kind(
@@ -700,19 +752,19 @@ def test_baseline_command_sets_new_limits_and_keeps_the_old(
     assert len(history) == 2
     assert [h.active for h in history] == [False, True]
     assert (history[0].centre, history[0].sd) == (earlier.centre, earlier.sd)
-    latest = np.array([v for data in recent for v in zn_ccv_values(data)])
+    centre, within, between = one_way([zn_ccv_values(data) for data in recent])
     assert history[1].n == 4 and history[1].source == "baseline"
-    assert history[1].centre == pytest.approx(latest.mean(), rel=1e-12)
-    assert history[1].sd == pytest.approx(latest.std(ddof=1), rel=1e-9)
+    assert history[1].centre == pytest.approx(centre, rel=1e-12)
+    assert history[1].sd == pytest.approx(np.hypot(within, between), rel=1e-9)
     assert one.ledger.control.active_limits(ZN_CCV) == history[1]
 
 
 def _drifting_lab(lab: Callable[..., Lab], ewma: bool) -> list[Outcome]:
-    """Runs whose Zn CCVs all sit 1.5 SD above fixed limits: a drift no 1-3s sees."""
+    """Runs whose Zn CCV means all sit 1.7 SD above fixed limits: a drift no 1-3s sees."""
     first, _ = zn_ccv_values(metals_run("probe"))
     fixed = {"analyte": "Zn", "kind": "CCV", "centre": first - 3.0, "sd": 2.0}
     one = lab({"fixed": [fixed], "rules": ["1-3s"], "ewma": ewma}, name=f"ewma-{ewma}")
-    return one.judge_runs([metals_run(f"DRIFT-{i}") for i in range(3)])
+    return one.judge_runs([metals_run(f"DRIFT-{i}") for i in range(5)])
 
 
 def test_ewma_reports_a_slow_drift_when_switched_on(lab: Callable[..., Lab]) -> None:
@@ -754,3 +806,27 @@ def test_chart_draws_the_chosen_series_as_png(
     assert drawn.name == "Zn--CCV--25_ug_L.png"
     assert drawn.read_bytes().startswith(b"\x89PNG")
     assert str(drawn) in capsys.readouterr().out
+
+
+def test_a_version_2_ledger_gains_the_limits_split_and_keeps_its_limits(tmp_path: Path) -> None:
+    """Opening a schema-2 ledger adds sd_within, sd_between and runs; old limits read as unsplit."""
+    path = tmp_path / LEDGER_NAME
+    Ledger.open(path).close()
+    with sqlite3.connect(path) as db:
+        for column in ("sd_within", "sd_between", "runs"):
+            db.execute(f"ALTER TABLE control_limits DROP COLUMN {column}")
+        db.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
+        db.execute(
+            "INSERT INTO control_limits (instrument, analyte, kind, level, centre, sd, n, source, "
+            "set_at) VALUES ('BWL-ICPMS-2', 'Zn', 'CCV', '25 µg/L', 100.0, 1.5, 20, 'baseline', "
+            "'2026-11-01T00:00:00.000+00:00')"
+        )
+    upgraded = Ledger.open(path)
+    try:
+        assert upgraded.database.meta("schema_version") == "3"
+        limits = upgraded.control.active_limits(ZN_CCV)
+        assert limits is not None
+        assert (limits.centre, limits.sd, limits.sd_within, limits.runs) == (100.0, 1.5, None, 0)
+        assert stored_to_limits(limits).run_sd(3) == 1.5  # judged as before: not split, not widened
+    finally:
+        upgraded.close()

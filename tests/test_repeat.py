@@ -2,16 +2,17 @@
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 from typing import Any
 
 from calwarden.daemon.alerts.content import file_alert, text_body
-from calwarden.daemon.control_log.log import Assessment, amend
 from calwarden.daemon.outputs.report import render
 from calwarden.daemon.outputs.verdict_json import verdict_to_json
-from calwarden.daemon.parsing.reader import decode_table, normalise
+from calwarden.daemon.parsing.native import decode_table, normalise
 from calwarden.rules.criteria import build_criteria
 from calwarden.rules.evaluate import evaluate
+from calwarden.rules.verdict import Finding, Severity, status_of
 
 BASE = (Path(__file__).parent / "cases" / "_base.csv").read_text(encoding="utf-8")
 
@@ -88,9 +89,15 @@ def test_report_and_alert_list_what_to_repeat() -> None:
 
 
 def test_a_control_rejection_asks_for_the_run() -> None:
-    """A failing control-chart finding added by the daemon adds a repeat entry for the run."""
-    document = _document("9,S-1,sample,Zn,3100,,,,,,,µg/L\n10,CCV-1,ccv,Zn,10110,10,,,,,,µg/L\n")
-    finding = {"rule": "control.1-3s", "severity": "fail", "analyte": "Zn", "message": "1-3s"}
-    amended = amend(document, Assessment(points=(), limits=(), findings=(finding,), series=()))
-    assert amended["status"] == "fail"
-    assert amended["repeat"] == [{"what": "run", "analyte": "Zn", "reasons": ["1-3s"]}]
+    """A failing control-chart finding added to a verdict adds a repeat entry for the run."""
+    text = (
+        BASE.rstrip("\n")
+        + "\n9,S-1,sample,Zn,3100,,,,,,,µg/L\n10,CCV-1,ccv,Zn,10110,10,,,,,,µg/L\n"
+    )
+    verdict = evaluate(normalise(decode_table(text.encode("utf-8"))), build_criteria({}))
+    rejection = Finding("control.1-3.5s", Severity.FAIL, "1-3.5s", analyte="Zn")
+    findings = (*verdict.findings, rejection)
+    judged = dataclasses.replace(verdict, findings=findings, status=status_of(findings))
+    document = verdict_to_json(judged, source_path="r.csv", sha256=None, criteria_sha256=None)
+    assert document["status"] == "fail"
+    assert document["repeat"] == [{"what": "run", "analyte": "Zn", "reasons": ["1-3.5s"]}]

@@ -14,7 +14,7 @@ from test_golden import FIXTURES
 from verdict_invariants import problems
 
 from calwarden.daemon.outputs.verdict_json import verdict_to_json
-from calwarden.daemon.parsing.reader import decode_table, normalise
+from calwarden.daemon.parsing.native import decode_table, normalise
 from calwarden.daemon.pipeline import judge_file
 from calwarden.daemon.settings.config import load_config
 from calwarden.rules.criteria import build_criteria

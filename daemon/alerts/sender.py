@@ -45,8 +45,9 @@ from calwarden.daemon.alerts.content import (
 )
 from calwarden.daemon.alerts.settings import AlertSettings
 from calwarden.daemon.alerts.transport import DeliveryError, post_webhook, send_email
-from calwarden.daemon.control_log.log import ControlSettings, series_name
+from calwarden.daemon.control_log.log import series_name
 from calwarden.daemon.outputs.files import atomic_write
+from calwarden.daemon.settings.control import ControlSettings
 from calwarden.daemon.stores.control import ControlHistory
 from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
 from calwarden.daemon.stores.outbox import Delivery, Outbox, StoredAlert

@@ -229,7 +229,7 @@ class AlertSettings(Section):
         description="which events raise an alert: fail, error, control, daemon",
     )
     control_rules: tuple[str, ...] = Field(
-        default=("1-3s", "2-2s", "R-4s", "4-1s", "10-x", "ewma"),
+        default=("1-3s", "1-3.5s", "2-2s", "R-4s", "4-1s", "10-x", "ewma"),
         description="control-chart rules whose violation on an otherwise passing run raises a "
         "'control' alert (1-2s, a warning rule, is left out by default)",
     )

@@ -420,7 +420,7 @@ def _chart(args: argparse.Namespace) -> int:
         if args.chart_command == "export":
             database = Database(ledger_path, read_only=True)
             try:
-                rows = export_rows(ControlHistory(database), chosen)
+                rows = export_rows(ControlHistory(database), chosen, config.control)
             finally:
                 database.close()
             stream = args.file.open("w", encoding="utf-8", newline="") if args.file else sys.stdout

@@ -26,6 +26,7 @@ from __future__ import annotations
 import hashlib
 import json
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
 
@@ -33,7 +34,7 @@ import structlog
 
 from calwarden.daemon.alerts.content import file_alert, payload_bytes
 from calwarden.daemon.alerts.settings import AlertSettings
-from calwarden.daemon.control_log.log import Assessment, amend, assess
+from calwarden.daemon.control_log.log import NOTHING, Assessment, assess
 from calwarden.daemon.outputs.files import fitting_stem, output_files, write_files
 from calwarden.daemon.outputs.pictures import calibration_picture_name
 from calwarden.daemon.outputs.report import render
@@ -41,6 +42,7 @@ from calwarden.daemon.outputs.verdict_json import calwarden_version
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.pipeline import Judgement, error_document, judge_file
 from calwarden.daemon.settings.config import AppConfig, Inbox
+from calwarden.daemon.stores.database import LedgerError
 from calwarden.daemon.stores.ledger import Ledger
 from calwarden.daemon.stores.records import (
     Evaluation,
@@ -51,6 +53,9 @@ from calwarden.daemon.stores.records import (
     timestamp,
 )
 from calwarden.rules.control_points import control_observations
+from calwarden.rules.control_verdict import with_control
+from calwarden.rules.model import Run
+from calwarden.rules.verdict import Verdict
 
 log = structlog.get_logger("calwarden")
 
@@ -204,9 +209,16 @@ class Intake:
         started = time.perf_counter()
         previous = self.ledger.files.current(inbox.name, relative)
         version = 1 if previous is None else previous.version + 1
-        judgement = self._judgement(inbox, path, data)
-        assessment = self._assess(inbox, relative, judgement)
-        document = amend(judgement.document, assessment)
+        assessed: list[Assessment] = []
+
+        def refine(run: Run, verdict: Verdict) -> Verdict:
+            """The run's verdict with its control findings, from the control log's history."""
+            assessed.append(self._assess(inbox, relative, run, verdict))
+            return with_control(verdict, assessed[-1].history, inbox.config.control.policy())
+
+        judgement = self._judgement(inbox, path, data, refine)
+        assessment = assessed[-1] if assessed and judgement.verdict is not None else NOTHING
+        document = judgement.document
         stem = self._output_stem(inbox, relative) if previous is None else previous.output_stem
         assert stem is not None
         out_folder = inbox.out_dir / PurePosixPath(stem).parent
@@ -353,27 +365,36 @@ class Intake:
             summary=payload_bytes(summary),
         )
 
-    def _assess(self, inbox: Inbox, relative: str, judgement: Judgement) -> Assessment:
-        """This run's control points and the control-chart findings they complete."""
+    def _assess(self, inbox: Inbox, relative: str, run: Run, verdict: Verdict) -> Assessment:
+        """This run's control points and the history of the series they join."""
         settings = inbox.config.control
-        if judgement.verdict is None or judgement.run is None or not settings.enabled:
-            return Assessment((), (), (), ())
-        document = judgement.document
-        instrument = document.get("instrument") or inbox.instrument or inbox.name
+        if not settings.enabled:
+            return NOTHING
+        instrument = verdict.instrument or inbox.instrument or inbox.name
         return assess(
             self.ledger.control,
             settings,
             str(instrument),
-            str(document.get("run") or relative),
-            control_observations(judgement.run, judgement.verdict),
+            str(verdict.run or relative),
+            control_observations(run, verdict),
             timestamp(),
             replacing=(inbox.name, relative),
             failed_baselines=self._failed_baselines,
         )
 
-    def _judgement(self, inbox: Inbox, path: Path, data: bytes | None) -> Judgement:
+    def _judgement(
+        self,
+        inbox: Inbox,
+        path: Path,
+        data: bytes | None,
+        refine: Callable[[Run, Verdict], Verdict],
+    ) -> Judgement:
         try:
-            return judge_file(path, inbox.config, data=data, instrument=inbox.instrument)
+            return judge_file(
+                path, inbox.config, data=data, instrument=inbox.instrument, refine=refine
+            )
+        except LedgerError:
+            raise  # the control log could not be read: a daemon fault, not the file's
         except Exception as error:  # a bug of ours still gives this file a verdict
             message = f"internal error while judging the file ({type(error).__name__}: {error})"
             log.error("judge_crashed", path=str(path), error=repr(error))

@@ -15,17 +15,16 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from calwarden.daemon.control_log.log import (
-    ControlSettings,
     SeriesFilter,
     series_limits,
     series_name,
 )
 from calwarden.daemon.outputs.files import PART_LIMIT, atomic_write, shortened
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
+from calwarden.daemon.settings.control import ControlSettings
 from calwarden.daemon.stores.control import ControlHistory
 from calwarden.daemon.stores.records import SeriesKey, StoredLimits
 from calwarden.rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
-from calwarden.rules.verdict import Severity
 
 if TYPE_CHECKING:
     from calwarden.daemon.outputs.drawing import ControlChart
@@ -74,7 +73,8 @@ def _limits_note(stored: StoredLimits | None, fixed: bool) -> str:
         return "fixed centre and SD from the configuration"
     if stored is None:
         return ""
-    return f"limits from {stored.n} baseline points, set {stored.set_at[:10]}"
+    runs = f" of {stored.runs} runs" if stored.runs else ""
+    return f"limits from {stored.n} baseline points{runs}, set {stored.set_at[:10]}"
 
 
 def build_chart(ledger: ControlHistory, settings: ControlSettings, key: SeriesKey) -> ControlChart:
@@ -104,7 +104,8 @@ def build_chart(ledger: ControlHistory, settings: ControlSettings, key: SeriesKe
             limits,
         )
         for violation in evaluate_group((series,), settings.rules):
-            worst = REJECTION if violation.severity is Severity.FAIL else WARNING
+            rejects = violation.rule in settings.rejecting and settings.rejection_severity == "fail"
+            worst = REJECTION if rejects else WARNING
             for ref in violation.points:
                 if status[ref.index] != REJECTION:
                     status[ref.index] = worst

@@ -20,9 +20,9 @@ from typing import Any, cast
 from calwarden.daemon.outputs.verdict_model import (
     AdditionEntry,
     CalibrationEntry,
+    ControlChartEntry,
     FindingEntry,
     FitEntry,
-    RepeatEntry,
     ReplicateEntry,
     RerunEntry,
     ResultEntry,
@@ -32,6 +32,7 @@ from calwarden.rules.calibration import Fit
 from calwarden.rules.verdict import (
     AdditionSeries,
     Calibration,
+    ControlChart,
     Finding,
     Flag,
     ReplicateGroup,
@@ -228,7 +229,7 @@ def verdict_to_json(
     sample_ids = {r.seq: r.sample_id for r in verdict.results if r.seq is not None}
     for calibration in verdict.calibrations:
         sample_ids.update({s.seq: s.sample_id for s in calibration.standards})
-    return {
+    document: VerdictDocument = {
         "schema_version": SCHEMA_VERSION,
         "status": verdict.status.value,
         "run": verdict.run,
@@ -249,21 +250,25 @@ def verdict_to_json(
         ],
         "error": verdict.error,
     }
+    if verdict.control_charts:
+        document["control_charts"] = [_control_chart(c) for c in verdict.control_charts]
+    return document
 
 
-def add_repeat(
-    repeat: list[RepeatEntry], what: str, analyte: str | None, reason: str
-) -> list[RepeatEntry]:
-    """``repeat`` with ``reason`` added to its (what, analyte) entry, made when missing."""
-    entries: list[RepeatEntry] = [
-        {"what": e["what"], "analyte": e["analyte"], "reasons": list(e["reasons"])} for e in repeat
-    ]
-    for entry in entries:
-        if entry["what"] == what and entry["analyte"] == analyte:
-            if reason not in entry["reasons"]:
-                entry["reasons"].append(reason)
-            return entries
-    return [*entries, {"what": what, "analyte": analyte, "reasons": [reason]}]
+def _control_chart(chart: ControlChart) -> ControlChartEntry:
+    return {
+        "instrument": chart.instrument,
+        "analyte": chart.analyte,
+        "kind": chart.kind,
+        "level": chart.level,
+        "points": chart.points,
+        "centre": _number(chart.centre),
+        "sd": _number(chart.sd),
+        "limits": chart.limits,
+        "sd_within": _number(chart.sd_within),
+        "sd_between": _number(chart.sd_between),
+        "runs": chart.runs,
+    }
 
 
 def rerun_list(verdict: Verdict) -> list[RerunEntry]:

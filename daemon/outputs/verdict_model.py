@@ -205,6 +205,9 @@ class ControlChartEntry(TypedDict):
     centre: float | None
     sd: float | None
     limits: str | None  # "baseline" | "fixed" | None: not yet
+    sd_within: float | None  # the SD within one run, when the limits split it
+    sd_between: float | None  # the SD between runs
+    runs: int | None  # baseline runs behind the limits (None or 0: not known)
 
 
 class VerdictDocument(TypedDict):

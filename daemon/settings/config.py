@@ -24,7 +24,7 @@ from calwarden.daemon.alerts.settings import (
     ThrottleSettings,
     WebhookSettings,
 )
-from calwarden.daemon.control_log.log import ControlSettings, FixedLimits
+from calwarden.daemon.settings.control import ControlSettings, FixedLimits
 from calwarden.daemon.settings.formats import (
     ColumnByPattern,
     ExportFormat,

@@ -41,9 +41,21 @@ def _point(row: Row) -> StoredPoint:
 
 
 def _limits(row: Row) -> StoredLimits:
-    limits_id, centre, sd, n, source, first_point, last_point, set_at, active = row
+    limits_id, centre, sd, n, source, first_point, last_point, set_at, active = row[:9]
+    sd_within, sd_between, runs = row[9:12]
     return StoredLimits(
-        limits_id, centre, sd, n, source, first_point, last_point, set_at, bool(active)
+        limits_id,
+        centre,
+        sd,
+        n,
+        source,
+        first_point,
+        last_point,
+        set_at,
+        bool(active),
+        sd_within,
+        sd_between,
+        int(runs or 0),
     )
 
 
@@ -147,9 +159,9 @@ class ControlHistory:
     def limits_history(self, key: SeriesKey) -> list[StoredLimits]:
         """Every set of limits the series has had, oldest first."""
         rows = self._db.rows(
-            "SELECT id, centre, sd, n, source, first_point, last_point, set_at, active "
-            "FROM control_limits WHERE instrument = ? AND analyte = ? AND kind = ? "
-            "AND level = ? ORDER BY id",
+            "SELECT id, centre, sd, n, source, first_point, last_point, set_at, active, "
+            "sd_within, sd_between, runs FROM control_limits WHERE instrument = ? "
+            "AND analyte = ? AND kind = ? AND level = ? ORDER BY id",
             _key_values(key),
         )
         return [_limits(row) for row in rows]
@@ -231,7 +243,8 @@ class ControlLog(ControlHistory):
         )
         transaction.insert(
             "INSERT INTO control_limits (instrument, analyte, kind, level, centre, sd, n, "
-            "source, first_point, last_point, set_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            "source, first_point, last_point, set_at, sd_within, sd_between, runs) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (
                 *_key_values(limits.key),
                 limits.centre,
@@ -241,6 +254,9 @@ class ControlLog(ControlHistory):
                 limits.first_point,
                 limits.last_point,
                 limits.set_at,
+                limits.sd_within,
+                limits.sd_between,
+                limits.runs,
             ),
         )
 

@@ -30,7 +30,7 @@ from contextlib import contextmanager, suppress
 from pathlib import Path
 from typing import Any
 
-SCHEMA_VERSION = 2  # 2: the alert outbox (a version-1 ledger is upgraded in place)
+SCHEMA_VERSION = 3  # 2: the alert outbox; 3: limits split between and within runs
 LEDGER_NAME = "ledger.sqlite3"
 
 #: One result row, its values as the engine returns them (int, float, str, bytes, None).
@@ -293,7 +293,24 @@ def _create_or_upgrade(transaction: Transaction) -> None:
         (str(SCHEMA_VERSION),),
     )
     # Version 1 lacked only the outbox tables, just created above.
-    transaction.execute(
-        "UPDATE meta SET value = ? WHERE key = 'schema_version' AND value = '1'",
-        (str(SCHEMA_VERSION),),
-    )
+    transaction.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version' AND value = '1'")
+    _migrate_limits_split(transaction)
+
+
+#: Columns version 3 adds to control_limits: the SD split within and between runs
+#: and the number of baseline runs (rules/control.py, run_baseline). Limits stored
+#: before have NULL (split unknown) and runs 0 (not widened), and are judged as before.
+_LIMITS_SPLIT_COLUMNS = (
+    ("sd_within", "REAL"),
+    ("sd_between", "REAL"),
+    ("runs", "INTEGER NOT NULL DEFAULT 0"),
+)
+
+
+def _migrate_limits_split(transaction: Transaction) -> None:
+    """Version 2 → 3, in the opening transaction: add the limits' split columns."""
+    present = {str(row[1]) for row in transaction.rows("PRAGMA table_info(control_limits)")}
+    for name, declaration in _LIMITS_SPLIT_COLUMNS:
+        if name not in present:
+            transaction.execute(f"ALTER TABLE control_limits ADD COLUMN {name} {declaration}")
+    transaction.execute("UPDATE meta SET value = '3' WHERE key = 'schema_version' AND value = '2'")

@@ -98,6 +98,9 @@ class StoredLimits:
     last_point: int | None
     set_at: str
     active: bool
+    sd_within: float | None = None  # schema 3: the split of sd (None: not known)
+    sd_between: float | None = None
+    runs: int = 0  # baseline runs behind the limits (0: not known)
 
 
 @dataclass(frozen=True, slots=True)
@@ -126,6 +129,9 @@ class NewLimits:
     first_point: int | None
     last_point: int | None
     set_at: str
+    sd_within: float | None = None  # schema 3: the split of sd (None: not known)
+    sd_between: float | None = None
+    runs: int = 0
 
 
 @dataclass(frozen=True, slots=True)

@@ -25,7 +25,7 @@ sys.path.insert(0, str(PROJECT / "tests"))
 from verdict_invariants import problems  # noqa: E402  (a helper of the tests)
 
 from calwarden.daemon.outputs.verdict_json import verdict_to_json  # noqa: E402
-from calwarden.daemon.parsing.reader import decode_table, normalise  # noqa: E402
+from calwarden.daemon.parsing.native import decode_table, normalise  # noqa: E402
 from calwarden.rules.criteria import build_criteria  # noqa: E402
 from calwarden.rules.errors import InputError  # noqa: E402
 from calwarden.rules.evaluate import evaluate  # noqa: E402
