@@ -292,3 +292,36 @@ def test_version_is_read_without_importing_numpy() -> None:
         [sys.executable, "-c", code], capture_output=True, text=True, check=True
     )
     assert result.stdout.split() == ["calwarden", version("calwarden"), "False"]
+
+
+def test_rules_lists_the_control_chart_rules_with_their_severity(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """`calwarden rules` lists the control.* rules verdicts use, each with its severity."""
+    assert main(["rules"]) == 0
+    listing = capsys.readouterr().out
+    assert "control.1-3.5s" in listing and "(fail)" in listing
+    assert main(["rules", "control.1-3s"]) == 0
+    assert "Westgard" in capsys.readouterr().out
+
+
+def test_rules_shows_the_configured_limits(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """With --config, a rule's explanation ends with the limits that configuration sets."""
+    config = tmp_path / "lab.yaml"
+    config.write_text(
+        "criteria:\n  defaults: {ccv_recovery_pct: [85, 115]}\n"
+        "  analytes: {Pb: {ccv_recovery_pct: [80, 120]}}\n",
+        encoding="utf-8",
+    )
+    assert main(["rules", "check.recovery", "--config", str(config)]) == 0
+    out = capsys.readouterr().out
+    assert "ccv_recovery_pct: 85–115" in out and "Pb: 80–120" in out
+    assert "``" not in out
+
+
+def test_unknown_rule_suggests_the_nearest(capsys: pytest.CaptureFixture[str]) -> None:
+    """A mistyped rule id gets a did-you-mean with the nearest ids."""
+    assert main(["rules", "check.recovry"]) == 2
+    assert "did you mean check.recovery" in capsys.readouterr().err

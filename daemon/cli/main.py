@@ -9,9 +9,12 @@ from __future__ import annotations
 
 import argparse
 import gc
+import inspect
 import json
+import re
 import sys
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -271,27 +274,105 @@ def _config(args: argparse.Namespace) -> int:
     return EXIT_PASS
 
 
-def _rules(args: argparse.Namespace) -> int:
+@dataclass(frozen=True, slots=True)
+class _Listed:
+    """One rule as `calwarden rules` shows it: acceptance rules and control-chart rules alike."""
+
+    id: str
+    summary: str
+    explanation: str
+    state: str = ""  # "switched off", or a control rule's severity under this configuration
+
+
+def _plain(text: str) -> str:
+    """Docstring text for a terminal: reST ``literals`` shown as plain words."""
+    return re.sub(
+        r"``([^`]+)``", r"\1", re.sub(r":(?:func|class|data|mod):`~?([^`]+)`", r"\1", text)
+    )
+
+
+def _listed_rules(config: AppConfig) -> list[_Listed]:
+    from calwarden.rules.control import WESTGARD_RULES, ewma_violations
     from calwarden.rules.registry import all_rules
+
+    disabled = set(config.criteria.disabled_rules)
+    listed = [
+        _Listed(r.id, r.summary, r.explanation, "switched off" if r.id in disabled else "")
+        for r in all_rules()
+    ]
+    control = config.control
+    for rule in WESTGARD_RULES.values():
+        if rule.id not in control.rules:
+            state = "not applied"
+        elif rule.id in control.rejecting:
+            state = control.rejection_severity
+        else:
+            state = control.warning_severity
+        explanation = inspect.cleandoc(rule.find.__doc__ or "")
+        listed.append(_Listed(f"control.{rule.id}", rule.summary, explanation, state))
+    explanation = inspect.cleandoc(ewma_violations.__doc__ or "")
+    state = control.ewma_severity if control.ewma else "not applied"
+    listed.append(_Listed("control.ewma", "EWMA of a series beyond its limits", explanation, state))
+    return listed
+
+
+def _configured_settings(rule: _Listed, config: AppConfig) -> list[str]:
+    """The criteria a rule's explanation names, as this configuration sets them."""
+    from calwarden.rules.criteria import AnalyteCriteria
+
+    named = [
+        key
+        for key in dict.fromkeys(re.findall(r"`+([a-z_]+)`+", rule.explanation))
+        if key in AnalyteCriteria.model_fields
+    ]
+    if not named:
+        return []
+    criteria = config.criteria
+    lines = ["", "In this configuration:"]
+    for key in named:
+        lines.append(f"  {key}: {_setting_text(getattr(criteria.defaults, key))}")
+        for analyte, override in criteria.analytes.items():
+            if key in override:
+                value = getattr(criteria.for_analyte(analyte), key)
+                lines.append(f"    {analyte}: {_setting_text(value)}")
+    return lines
+
+
+def _setting_text(value: object) -> str:
+    if isinstance(value, tuple):
+        return "–".join(f"{v:g}" if isinstance(v, float) else str(v) for v in value)
+    if isinstance(value, float):
+        return f"{value:g}"
+    return "none" if value is None else str(getattr(value, "value", value))
+
+
+def _rules(args: argparse.Namespace) -> int:
+    import difflib
 
     config = _load_config_or_say_why(args.config)
     if config is None:
         return EXIT_ERROR
-    rules = all_rules()
+    rules = _listed_rules(config)
     if args.rule:
         chosen = [r for r in rules if r.id == args.rule]
         if not chosen:
+            ids = [r.id for r in rules]
+            near = difflib.get_close_matches(args.rule, ids, n=3, cutoff=0.5)
+            hint = f"; did you mean {' or '.join(near)}?" if near else ""
             print(
-                f"calwarden: no rule {args.rule!r}; `calwarden rules` lists them", file=sys.stderr
+                f"calwarden: no rule {args.rule!r}{hint} (`calwarden rules` lists them)",
+                file=sys.stderr,
             )
             return EXIT_ERROR
         rule = chosen[0]
-        print(f"{rule.id}: {rule.summary}\n\n{rule.explanation}")
+        state = f"  ({rule.state})" if rule.state else ""
+        print(f"{rule.id}: {rule.summary}{state}\n\n{_plain(rule.explanation)}")
+        for line in _configured_settings(rule, config):
+            print(line)
         return EXIT_PASS
-    disabled = set(config.criteria.disabled_rules)
     width = max(len(r.id) for r in rules)
     for rule in rules:
-        state = "  (switched off)" if rule.id in disabled else ""
+        state = f"  ({rule.state})" if rule.state else ""
         print(f"{rule.id:<{width}}  {rule.summary}{state}")
     print("\n`calwarden rules RULE` explains one rule: why, its settings and examples.")
     return EXIT_PASS
