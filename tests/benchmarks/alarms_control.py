@@ -42,7 +42,8 @@ from structlog.testing import capture_logs
 
 from calwarden.daemon.intake.accept import Intake
 from calwarden.daemon.settings.config import build_config, plan_watch
-from calwarden.daemon.stores.ledger import LEDGER_NAME, Ledger
+from calwarden.daemon.stores.database import LEDGER_NAME
+from calwarden.daemon.stores.ledger import Ledger
 
 ANALYTES = {"Zn": 9500.0, "Cu": 21000.0, "Pb": 52000.0, "Cd": 14000.0}  # response per µg/L
 STANDARDS = (1.0, 2.0, 5.0, 10.0, 25.0, 50.0)
@@ -105,7 +106,7 @@ class Lab:
             build_config(data, "bench"), inbox=root / "inbox", out=root / "out", settle_seconds=0.1
         )
         self.inbox = plan.inboxes[0]
-        self.ledger = Ledger(plan.state_dir / LEDGER_NAME)
+        self.ledger = Ledger.open(plan.state_dir / LEDGER_NAME)
         self.intake = Intake(self.ledger, plan.inboxes)
         self.count = 0
 
