@@ -194,32 +194,37 @@ EVERY_RULE_REJECTS = {
 
 
 def measure(quick: bool) -> list[tuple[str, float, str]]:
-    """The figures (name, value, target) with default settings, and with every rule rejecting."""
+    """The figures (name, value in %, target) with default settings, and every rule rejecting."""
     labs, runs, shift_labs = (4, 30, 6) if quick else (24, 60, 25)
     rate, by_rule = in_control(labs, runs, None)
     first, two = shift_caught(shift_labs, 0.05, None)
     figures = [
-        (f"in-control runs failed by control rules ({labs * runs} runs)", rate, "<= 0.02"),
-        ("5 % shift caught in the first run", first, "informative"),
-        ("5 % shift caught within two runs", two, ">= 0.95"),
+        (f"in-control runs failed by control rules ({labs * runs} runs)", 100 * rate, "≤ 2 %"),
+        ("5 % shift caught in the first run", 100 * first, "informative"),
+        ("5 % shift caught within two runs", 100 * two, "≥ 95 %"),
     ]
     for rule, count in sorted(by_rule.items()):
-        figures.append((f"  of which {rule}", count / (labs * runs), "informative"))
+        figures.append((f"  of which {rule}", 100 * count / (labs * runs), "informative"))
     strict_labs = max(2, labs // 3)
     strict, strict_by_rule = in_control(strict_labs, runs, EVERY_RULE_REJECTS)
     figures.append(
-        (f"every rule rejecting: runs failed ({strict_labs * runs} runs)", strict, "informative")
+        (
+            f"every rule rejecting: runs failed ({strict_labs * runs} runs)",
+            100 * strict,
+            "informative",
+        )
     )
     for rule, count in sorted(strict_by_rule.items()):
-        figures.append((f"  of which {rule}", count / (strict_labs * runs), "informative"))
+        figures.append((f"  of which {rule}", 100 * count / (strict_labs * runs), "informative"))
     return figures
 
 
 def _meets(value: float, target: str) -> str:
-    if target.startswith("<="):
-        return "meets" if value <= float(target[2:]) else "MISSES"
-    if target.startswith(">="):
-        return "meets" if value >= float(target[2:]) else "MISSES"
+    bound = target.strip("≤≥ %")
+    if target.startswith("≤"):
+        return "meets" if value <= float(bound) else "MISSES"
+    if target.startswith("≥"):
+        return "meets" if value >= float(bound) else "MISSES"
     return ""
 
 

@@ -40,7 +40,7 @@ def main() -> int:
     width = max(len(name) for name, _, _ in rows)
     print(f"{'figure':<{width}}  {'measured':>9}  target")
     for name, value, target in rows:
-        print(f"{name:<{width}}  {value:>9.3g}  {target}")
+        print(f"{name:<{width}}  {value:>7.1f} %  {target}")
     return 0
 
 
