@@ -39,11 +39,8 @@ def _parse(path: Path) -> EmailMessage:
     return parsed
 
 
-def test_an_output_fault_sends_a_daemon_alert_before_the_daemon_stops(
-    tmp_path: Path, loopback_smtp: tuple[Recorder, int]
-) -> None:
-    """The output folder replaced by a file: the fault's alert reaches the server."""
-    handler, port = loopback_smtp
+def _watcher_mailing_to(tmp_path: Path, port: int) -> tuple[Watcher, Path, Path, Path]:
+    """A watcher (not started) on a new inbox, its alerts to the loopback server on ``port``."""
     inbox, out, state = tmp_path / "inbox", tmp_path / "out", tmp_path / "state"
     inbox.mkdir()
     config = build_config(
@@ -56,7 +53,15 @@ def test_an_output_fault_sends_a_daemon_alert_before_the_daemon_stops(
         "test.yaml",
     )
     plan = plan_watch(config, config_dir=tmp_path, inbox=inbox, out=out, settle_seconds=0.1)
-    watcher = Watcher(plan)
+    return Watcher(plan), inbox, out, state
+
+
+def test_an_output_fault_sends_a_daemon_alert_before_the_daemon_stops(
+    tmp_path: Path, loopback_smtp: tuple[Recorder, int]
+) -> None:
+    """The output folder replaced by a file: the fault's alert reaches the server."""
+    handler, port = loopback_smtp
+    watcher, inbox, out, _state = _watcher_mailing_to(tmp_path, port)
     watcher.start()
     try:
         assert watcher.wait_idle(15)
@@ -104,19 +109,7 @@ def test_a_full_disk_under_the_ledger_still_gives_one_daemon_alert(
 ) -> None:
     """Ledger writes failing (disk full): the daemon stops with exactly one alert, by e-mail."""
     handler, port = loopback_smtp
-    inbox, out, state = tmp_path / "inbox", tmp_path / "out", tmp_path / "state"
-    inbox.mkdir()
-    config = build_config(
-        {
-            "watch": {"state_dir": str(state)},
-            "alerts": {
-                "email": {"host": "127.0.0.1", "port": port, "security": "none", "to": [ANALYST]}
-            },
-        },
-        "test.yaml",
-    )
-    plan = plan_watch(config, config_dir=tmp_path, inbox=inbox, out=out, settle_seconds=0.1)
-    watcher = Watcher(plan)
+    watcher, inbox, _out, state = _watcher_mailing_to(tmp_path, port)
     with capture_logs() as events:
         watcher.start()
         try:
