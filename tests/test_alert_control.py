@@ -89,25 +89,31 @@ def test_a_control_alert_shows_the_chart_of_the_series_inline(
     assert pictures[0].get_content()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
-def test_a_1_2s_warning_alone_raises_no_alert(tmp_path: Path) -> None:
-    """1-2s is left out of control_rules by default: a run with only 1-2s raises nothing."""
-    # Centre 100, SD 1.1: the Cd CCVs (98.6, 97.2, 97.1 %) have their run mean at -2.2 SD.
-    watching = _watch(
-        tmp_path,
-        {
-            "fixed": [{"analyte": "Cd", "kind": "CCV", "centre": 100.0, "sd": 1.1}],
-            "rules": ["1-2s"],
-        },
-        {},
-    )
+@pytest.mark.parametrize(
+    ("rule", "alerts", "mails"),
+    [("1-2s", {}, 0), ("1-3s", {}, 0), ("1-3s", {"control_rules": ["1-3s"]}, 1)],
+    ids=["1-2s-default", "1-3s-default", "1-3s-listed"],
+)
+def test_warning_rules_mail_only_when_listed(
+    tmp_path: Path, rule: str, alerts: dict[str, Any], mails: int
+) -> None:
+    """A warning rule's finding on a passing run sends mail only when control_rules lists it."""
+    # Centre 100, SD 1.1: the Cd CCVs (98.6, 97.2, 97.1 %) have their run mean at -2.2 SD;
+    # centre 90, SD 1: far above, so 1-3s fires (a warning by default).
+    fixed = {"centre": 100.0, "sd": 1.1} if rule == "1-2s" else {"centre": 90.0, "sd": 1.0}
+    control = {"fixed": [{"analyte": "Cd", "kind": "CCV", **fixed}], "rules": [rule]}
+    watching = _watch(tmp_path, control, alerts)
     watcher = next(watching)
     try:
         wait_for(lambda: watcher.outcomes >= 1, what="the run judged")
         assert watcher.sender is not None
+        if mails:
+            wait_for(lambda: len(_messages(watcher)) >= mails, what="the control alert")
         assert watcher.sender.wait_settled(10)
         verdict = json.loads((tmp_path / "out" / "bwl-metals-pass.verdict.json").read_text())
-        assert "control.1-2s" in {f["rule"] for f in verdict["findings"]}
-        assert _messages(watcher) == []
+        assert f"control.{rule}" in {f["rule"] for f in verdict["findings"]}
+        assert verdict["status"] == "pass"
+        assert len(_messages(watcher)) == mails
     finally:
         watching.close()
 
