@@ -830,3 +830,24 @@ def test_a_version_2_ledger_gains_the_limits_split_and_keeps_its_limits(tmp_path
         assert stored_to_limits(limits).run_sd(3) == 1.5  # judged as before: not split, not widened
     finally:
         upgraded.close()
+
+
+def test_a_version_2_ledger_reads_its_limits_without_being_upgraded(tmp_path: Path) -> None:
+    """A schema-2 ledger opened read-only (status, chart export) reads its limits as unsplit."""
+    path = tmp_path / LEDGER_NAME
+    Ledger.open(path).close()
+    with sqlite3.connect(path) as db:
+        for column in ("sd_within", "sd_between", "runs"):
+            db.execute(f"ALTER TABLE control_limits DROP COLUMN {column}")
+        db.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
+        db.execute(
+            "INSERT INTO control_limits (instrument, analyte, kind, level, centre, sd, n, source, "
+            "set_at) VALUES ('BWL-ICPMS-2', 'Zn', 'CCV', '25 µg/L', 100.0, 1.5, 20, 'baseline', "
+            "'2026-11-01T00:00:00.000+00:00')"
+        )
+    reader = Ledger.open(path, read_only=True)
+    try:
+        limits = reader.control.active_limits(ZN_CCV)
+        assert limits is not None and (limits.sd, limits.sd_within, limits.runs) == (1.5, None, 0)
+    finally:
+        reader.close()

@@ -78,6 +78,17 @@ class ControlHistory:
 
     def __init__(self, database: Database) -> None:
         self._db = database
+        self._split: str | None = None
+
+    def _split_columns(self) -> str:
+        """The limits' split columns, or NULLs for a schema-2 ledger read without upgrading it
+        (``calwarden status`` and ``chart export`` open the ledger read-only)."""
+        if self._split is None:
+            version = self._db.meta("schema_version")
+            self._split = (
+                "sd_within, sd_between, runs" if version not in ("1", "2") else "NULL, NULL, 0"
+            )
+        return self._split
 
     def series_keys(self) -> list[SeriesKey]:
         """Every series of the control log, sorted."""
@@ -160,7 +171,7 @@ class ControlHistory:
         """Every set of limits the series has had, oldest first."""
         rows = self._db.rows(
             "SELECT id, centre, sd, n, source, first_point, last_point, set_at, active, "
-            "sd_within, sd_between, runs FROM control_limits WHERE instrument = ? "
+            f"{self._split_columns()} FROM control_limits WHERE instrument = ? "
             "AND analyte = ? AND kind = ? AND level = ? ORDER BY id",
             _key_values(key),
         )
