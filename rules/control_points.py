@@ -17,6 +17,7 @@ Pure: the shell stores the observations and reads them back as series.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from calwarden.rules.calibration import Model
@@ -150,4 +151,6 @@ def control_observations(run: Run, verdict: Verdict) -> tuple[ControlObservation
                 acquired,
             )
         )
-    return tuple(found)
+    # A value that overflowed cannot be charted (the run's own result.computable rule
+    # fails it); dropping it here keeps the log's point ids as the control log predicts.
+    return tuple(o for o in found if math.isfinite(o.value))
