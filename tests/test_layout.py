@@ -524,7 +524,7 @@ def test_xlsx_reads_the_same_as_its_csv_equivalent(tmp_path: Path) -> None:
         header={"skip_lines": 2},
         decimal=",",
         thousands=".",  # for text; cells stored as numbers are left alone
-        columns={"seq": "Seq.", "sample_id": "Sample", "response": "Net cps"},
+        columns={"seq": "Order", "sample_id": "Sample", "response": "Net signal"},
         kinds={"codes": {"Standard": "cal", "Field sample": "sample"}},
     )
     book = openpyxl.Workbook()
@@ -532,7 +532,9 @@ def test_xlsx_reads_the_same_as_its_csv_equivalent(tmp_path: Path) -> None:
     sheet = book.create_sheet("Results")
     sheet.append(["Results of run 12"])
     sheet.append(["Printed 2026-11-24"])
-    sheet.append(["Seq.", "Sample", "Kind", "Analyte", "Net cps", "Nominal", "Acquired", "Note"])
+    sheet.append(
+        ["Order", "Sample", "Kind", "Analyte", "Net signal", "Nominal", "Acquired", "Note"]
+    )
     sheet.append([1, "CAL-1", "Standard", "Cu", 1234.5, 2, datetime(2026, 11, 24, 8, 6), None])
     sheet.append([2.0, 1001, "Field sample", "Cu", 505, None, datetime(2026, 11, 24, 8, 9), "late"])
     path = tmp_path / "run.xlsx"
@@ -540,7 +542,7 @@ def test_xlsx_reads_the_same_as_its_csv_equivalent(tmp_path: Path) -> None:
     csv_text = (
         "Results of run 12\n"
         "Printed 2026-11-24\n"
-        "Seq.;Sample;Kind;Analyte;Net cps;Nominal;Acquired;Note\n"
+        "Order;Sample;Kind;Analyte;Net signal;Nominal;Acquired;Note\n"
         "1;CAL-1;Standard;Cu;1.234,5;2;2026-11-24T08:06:00;\n"
         "2;1001;Field sample;Cu;505;;2026-11-24T08:09:00;late\n"
     )
