@@ -62,7 +62,7 @@ def test_utf16_semicolon_decimal_comma_with_a_preamble_found_by_name() -> None:
         "Method;Metals in water;rev. 2\r\n"
         "Units;µg/L\r\n"
         "\r\n"
-        "Inj.;Sample Name;Type;Element;Intensity (cps);Expected\r\n"
+        "Injection;Sample Name;Type;Element;Intensity (cps);Expected\r\n"
         "1;CAL-0;blank;Zn;1194,1;\r\n"
         "2;CAL-1;cal;Zn;10644,6;1,5\r\n"
     )
@@ -70,7 +70,7 @@ def test_utf16_semicolon_decimal_comma_with_a_preamble_found_by_name() -> None:
         decimal=",",
         header={"find": "sample name"},
         columns={
-            "seq": "Inj.",
+            "seq": "Injection",
             "sample_id": "Sample Name",
             "kind": "Type",
             "analyte": "Element",
