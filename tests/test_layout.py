@@ -62,7 +62,7 @@ def test_utf16_semicolon_decimal_comma_with_a_preamble_found_by_name() -> None:
         "Method;Metals in water;rev. 2\r\n"
         "Units;µg/L\r\n"
         "\r\n"
-        "Inj.;Sample Name;Type;Element;Intensity (cps);Expected\r\n"
+        "Injection;Sample Name;Type;Element;Intensity (cps);Expected\r\n"
         "1;CAL-0;blank;Zn;1194,1;\r\n"
         "2;CAL-1;cal;Zn;10644,6;1,5\r\n"
     )
@@ -70,7 +70,7 @@ def test_utf16_semicolon_decimal_comma_with_a_preamble_found_by_name() -> None:
         decimal=",",
         header={"find": "sample name"},
         columns={
-            "seq": "Inj.",
+            "seq": "Injection",
             "sample_id": "Sample Name",
             "kind": "Type",
             "analyte": "Element",
@@ -229,9 +229,9 @@ def test_skip_lines_skips_title_lines_before_the_header() -> None:
 def test_footer_rows_are_left_out_and_recorded() -> None:
     """stop_at ends the data, skip_matching and blank rows are skipped; each is recorded."""
     text = (
-        "No.,Solution,Kind,Element,Intensity\n"  # 1
+        "No.,Sample,Kind,Element,Intensity\n"  # 1
         "1,CAL-0,blank,Na,100\n"  # 2
-        "Average,,,Na,100\n"  # 3
+        "Running mean,,,Na,100\n"  # 3
         "\n"  # 4
         "2,S-1,sample,Na,50\n"  # 5
         "Summary,2 injections\n"  # 6
@@ -241,16 +241,16 @@ def test_footer_rows_are_left_out_and_recorded() -> None:
     fmt = layout(
         columns={
             "seq": "No.",
-            "sample_id": "Solution",
+            "sample_id": "Sample",
             "analyte": "Element",
             "response": "Intensity",
         },
-        footer={"stop_at": "^summary$", "skip_matching": ["^Average$"]},
+        footer={"stop_at": "^summary$", "skip_matching": ["^Running mean$"]},
     )
     table, detected = read(text, fmt)
     assert [row.line for row in table.rows] == [2, 5]
     assert detected.skipped_lines == (
-        (3, "matches skip_matching '^Average$'"),
+        (3, "matches skip_matching '^Running mean$'"),
         (4, "blank"),
         (6, "footer: matches stop_at '^summary$'"),
         (8, "after the footer"),
@@ -496,9 +496,9 @@ def test_timestamps_in_a_configured_format_become_iso() -> None:
         "seq,sample_id,kind,analyte,response,acquired\n"
         "1,S-1,sample,Cu,5,23.11.2026 08:06\n"
         "2,S-2,sample,Cu,6,2026-11-23T08:09:00\n"
-        "3,S-3,sample,Cu,7,11/23/2026 08:12 AM\n"
+        "3,S-3,sample,Cu,7,2026-11-23 08h12\n"
     )
-    fmt = layout(timestamp_formats=["%d.%m.%Y %H:%M", "%m/%d/%Y %I:%M %p"])
+    fmt = layout(timestamp_formats=["%d.%m.%Y %H:%M", "%Y-%m-%d %Hh%M"])
     assert [r.acquired for r in readings(text, fmt)] == [
         datetime(2026, 11, 23, 8, 6),
         datetime(2026, 11, 23, 8, 9),
@@ -524,25 +524,27 @@ def test_xlsx_reads_the_same_as_its_csv_equivalent(tmp_path: Path) -> None:
         header={"skip_lines": 2},
         decimal=",",
         thousands=".",  # for text; cells stored as numbers are left alone
-        columns={"seq": "Seq.", "sample_id": "Sample", "response": "Net cps"},
-        kinds={"codes": {"Cal Std": "cal", "Unknown": "sample"}},
+        columns={"seq": "Order", "sample_id": "Sample", "response": "Net signal"},
+        kinds={"codes": {"Standard": "cal", "Field sample": "sample"}},
     )
     book = openpyxl.Workbook()
     book.active.title = "Run info"
     sheet = book.create_sheet("Results")
     sheet.append(["Results of run 12"])
     sheet.append(["Printed 2026-11-24"])
-    sheet.append(["Seq.", "Sample", "Kind", "Analyte", "Net cps", "Nominal", "Acquired", "Note"])
-    sheet.append([1, "CAL-1", "Cal Std", "Cu", 1234.5, 2, datetime(2026, 11, 24, 8, 6), None])
-    sheet.append([2.0, 1001, "Unknown", "Cu", 505, None, datetime(2026, 11, 24, 8, 9), "late"])
+    sheet.append(
+        ["Order", "Sample", "Kind", "Analyte", "Net signal", "Nominal", "Acquired", "Note"]
+    )
+    sheet.append([1, "CAL-1", "Standard", "Cu", 1234.5, 2, datetime(2026, 11, 24, 8, 6), None])
+    sheet.append([2.0, 1001, "Field sample", "Cu", 505, None, datetime(2026, 11, 24, 8, 9), "late"])
     path = tmp_path / "run.xlsx"
     book.save(path)
     csv_text = (
         "Results of run 12\n"
         "Printed 2026-11-24\n"
-        "Seq.;Sample;Kind;Analyte;Net cps;Nominal;Acquired;Note\n"
-        "1;CAL-1;Cal Std;Cu;1.234,5;2;2026-11-24T08:06:00;\n"
-        "2;1001;Unknown;Cu;505;;2026-11-24T08:09:00;late\n"
+        "Order;Sample;Kind;Analyte;Net signal;Nominal;Acquired;Note\n"
+        "1;CAL-1;Standard;Cu;1.234,5;2;2026-11-24T08:06:00;\n"
+        "2;1001;Field sample;Cu;505;;2026-11-24T08:09:00;late\n"
     )
     parsed, detected = read_export(path, fmt)
     assert (detected.file_type, detected.sheet, detected.header_line) == ("xlsx", "Results", 3)
