@@ -426,12 +426,9 @@ class Watcher:
         )
 
     def _link_outside(self, inbox: Inbox, path: Path) -> bool:
-        """Whether ``path`` leads out of its inbox (a symbolic link) and must stay unread.
+        """Whether ``path`` leads out of its inbox and stays unread (``settling.may_follow``).
 
-        A link in an inbox could make calwarden read any file it may read and
-        quote it into verdicts, reports and e-mails; unless the inbox allows it
-        (``follow_links_outside``), such a link is skipped without being opened,
-        and logged once.
+        Such a link is skipped without being opened, and logged once.
         """
         if inbox.follow_links_outside:
             return False
@@ -439,7 +436,7 @@ class Watcher:
             target = path.resolve(strict=True)
         except (OSError, RuntimeError):
             return False  # gone, or a loop: the stat or read that follows says so
-        if target.is_relative_to(inbox.path):
+        if settling.may_follow(inbox, target):
             self._links_refused.discard(path)
             return False
         if path not in self._links_refused:
