@@ -12,7 +12,7 @@ from calwarden.daemon.settings.formats import ExportFormat
 from calwarden.rules.errors import ConfigError, InputError
 
 HEADER = "seq,sample_id,kind,analyte,response,nominal\n"
-# An invented export's sample names in three scripts; the bytes are Python's own codecs'.
+# An invented export's sample names in four scripts; the bytes are Python's own codecs'.
 CHINESE = HEADER + "1,空白-0,blank,Pb,12,\n2,标准-1,cal,Pb,1012,10\n3,水样-3,sample,Pb,505,\n"
 JAPANESE = (
     HEADER + "1,空試料,blank,Pb,12,\n2,標準1,cal,Pb,1012,10\n3,河川水サンプル,sample,Pb,505,\n"
@@ -20,6 +20,9 @@ JAPANESE = (
 POLISH = (
     HEADER
     + "1,Próbka ślepa,blank,Pb,12,\n2,Wzorzec łąka,cal,Pb,1012,10\n3,Woda żółta,sample,Pb,505,\n"
+)
+RUSSIAN = (
+    HEADER + "1,Холостая проба,blank,Pb,12,\n2,Стандарт,cal,Pb,1012,10\n3,Вода,sample,Pb,505,\n"
 )
 WESTERN = (
     "seq,sample_id,kind,analyte,response,nominal,unit\n"
@@ -55,9 +58,11 @@ def test_a_bytes_to_bytes_codec_is_no_encoding() -> None:
         build_config({"format": {"encoding": "base64"}}, "calwarden.yaml")
 
 
-@pytest.mark.parametrize(("text", "codec"), [(CHINESE, "gb18030"), (POLISH, "cp1250")])
+@pytest.mark.parametrize(
+    ("text", "codec"), [(CHINESE, "gb18030"), (POLISH, "cp1250"), (RUSSIAN, "cp1251")]
+)
 def test_auto_refuses_a_foreign_code_page_read_as_windows_1252(text: str, codec: str) -> None:
-    """auto does not judge GB18030 or Central-European bytes as Windows-1252 nonsense."""
+    """auto does not judge GB18030, Central-European or Cyrillic bytes as Windows-1252 nonsense."""
     with pytest.raises(InputError, match=r"implausible.*set format\.encoding") as caught:
         decode(text.encode(codec), "auto")
     assert caught.value.line is not None and caught.value.line >= 2
@@ -75,9 +80,10 @@ def test_auto_still_reads_western_text_with_units_and_accents() -> None:
 
 
 def test_implausible_counts_symbols_strung_together_not_lone_units() -> None:
-    """'°' beside ASCII is plausible; '¿Õ°×' has three implausible characters (Õ is a letter)."""
+    """'°' beside ASCII is plausible; '¿Õ°×' has three implausible characters, and 'ïðîáà' five."""
     assert implausible_characters("25 °C, ±0.5 µg/L") == []
     assert implausible_characters("1,¿Õ°×-0") == [2, 4, 5]
+    assert implausible_characters("1,ïðîáà") == [2, 3, 4, 5, 6]
 
 
 def test_utf32_reads_when_configured() -> None:

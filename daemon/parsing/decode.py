@@ -21,6 +21,7 @@ Windows-1252 turns into symbols strung together (``空白`` in GB18030 reads as
 from __future__ import annotations
 
 import codecs
+import re
 import stat
 import unicodedata
 from dataclasses import dataclass
@@ -188,6 +189,10 @@ def excerpt(text: str, limit: int = 40) -> str:
 #: Non-letters outside ASCII that Western lab text holds on their own (units, signs,
 #: typographic quotes and dashes); any other non-ASCII non-letter is implausible.
 _LAB_SYMBOLS = frozenset("°±µ²³·×÷‰€£§–—‘’‚“”„…•«»©®™\u00a0")
+#: Western words hold at most this many non-ASCII letters in a row ("ção"); Cyrillic or
+#: Greek read as Windows-1252 are whole words of them ("ïðîáà").
+_LONGEST_FOREIGN_RUN = 4
+_NON_ASCII_RUN = re.compile(r"[^\x00-\x7f]+")
 #: A fallback decoding is refused at this many implausible characters, when they
 #: are also at least this share of the text's non-ASCII characters.
 _IMPLAUSIBLE_COUNT = 3
@@ -200,21 +205,29 @@ def implausible_characters(text: str) -> list[int]:
     A non-ASCII character is implausible when it is not a letter (Unicode
     category L) and either is not one of the symbols lab files use on their own
     (``°``, ``±``, ``µ``, ``²``, ``€``, quotes, dashes…) or stands next to
-    another non-ASCII character. Western text keeps its accented letters among
+    another non-ASCII character; and every character of a run of more than
+    four non-ASCII characters is. Western text keeps its accented letters among
     ASCII ones (``Müller``, ``Solução``) and its symbols apart (``25 °C``,
     ``±0.5``); a multi-byte or other code page read as Windows-1252 strings
-    symbols together (``¿Õ°×``, ``³¹ka``). A limit, measured only on the cases
-    in the tests: text that reads as Western letters in both code pages (Czech
-    ``Řeka`` as ``Øeka``) cannot be told apart this way; configure its encoding.
+    symbols together (``¿Õ°×``, ``³¹ka``) or makes whole words of accented
+    letters (Russian ``проба`` as ``ïðîáà``). A limit: text that reads as
+    Western words in both code pages (Czech ``Řeka`` as ``Øeka``, most
+    Hungarian) cannot always be told apart this way; configure its encoding.
+    ``tests/benchmarks/alarms_encoding.py`` measures both rates.
     """
-    found: list[int] = []
+    found = {
+        offset
+        for run in _NON_ASCII_RUN.finditer(text)
+        if len(run.group()) > _LONGEST_FOREIGN_RUN
+        for offset in range(run.start(), run.end())
+    }
     for offset, char in enumerate(text):
         if char.isascii() or unicodedata.category(char).startswith("L"):
             continue
         beside = text[offset - 1 : offset] + text[offset + 1 : offset + 2]
         if char not in _LAB_SYMBOLS or not beside.isascii():
-            found.append(offset)
-    return found
+            found.add(offset)
+    return sorted(found)
 
 
 def _western_fallback(data: bytes) -> Text:
