@@ -16,6 +16,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from calwarden.rules.calibration import Model, Weighting
 from calwarden.rules.errors import ConfigError
+from calwarden.rules.model import Kind
 
 Range = tuple[float, float]
 
@@ -58,6 +59,9 @@ class AnalyteCriteria(_Frozen):
     # --- bracketing: a check every 10 samples and at the end (6010D / 6020B, 200.8) [memory].
     max_field_samples_between_checks: int = Field(default=10, ge=1)
     require_closing_check: bool = True
+    # --- QC a run must hold, kind: least count per run (run.required_qc). An ICV and a CCV:
+    # 6010D / 6020B, 200.7 / 200.8 [memory]; method blank and LCS per batch: the lab's to add.
+    required_qc: dict[Kind, int] = Field(default_factory=lambda: {Kind.ICV: 1, Kind.CCV: 1})
     # --- blanks: below the lowest calibration level (6010D / 6020B: ICB/CCB < LLOQ) [memory].
     # None = the lowest non-zero calibration standard.
     blank_limit: float | None = Field(default=None, gt=0)
@@ -81,6 +85,14 @@ class AnalyteCriteria(_Frozen):
     # --- standard addition: common practice.
     addition_min_points: int = Field(default=3, ge=2)
     addition_min_r_squared: float = Field(default=0.99, ge=0, le=1)
+
+    @field_validator("required_qc")
+    @classmethod
+    def _counts_whole(cls, value: dict[Kind, int]) -> dict[Kind, int]:
+        for kind, least in value.items():
+            if least < 0:
+                raise ValueError(f"required_qc.{kind}: a count, not {least}")
+        return value
 
     @model_validator(mode="after")
     def _ranges_ordered(self) -> AnalyteCriteria:

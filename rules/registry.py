@@ -19,6 +19,7 @@ from calwarden.rules.acceptance import (
     brackets,
     calibration,
     checks,
+    coverage,
     replicates,
     samples,
 )
@@ -39,6 +40,7 @@ RULES: tuple[Rule, ...] = (
     # check standards, control samples, blanks, internal standards
     checks.check_standard_recovery,
     checks.lcs_recovery,
+    coverage.run_required_qc,
     blanks.blank_contamination,
     samples.istd_recovery,
     # what the sequence and failed QC mean for the samples
@@ -58,6 +60,8 @@ RULES: tuple[Rule, ...] = (
     samples.spike_recovery,
     samples.spike_rpd,
     additions.addition_fit,
+    # what the run holds at all
+    coverage.run_field_samples,
 )
 
 

@@ -116,3 +116,10 @@ def test_two_overrides_for_one_analyte_are_refused() -> None:
     """Overrides under 'Zn' and 'zn' are refused: they name the same analyte."""
     with pytest.raises(ConfigError, match="name the same analyte"):
         build_criteria({"analytes": {"Zn": {}, "zn": {}}})
+
+
+def test_required_qc_names_kinds_and_counts() -> None:
+    """required_qc with an unknown kind or a negative count is a ConfigError naming the key."""
+    for wrong in ({"icvv": 1}, {"ccv": -1}):
+        with pytest.raises(ConfigError, match="required_qc"):
+            build_criteria({"defaults": {"required_qc": wrong}})

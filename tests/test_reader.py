@@ -356,3 +356,22 @@ def test_batch_column_is_read() -> None:
     )
     run = normalise(decode_table(text))
     assert [r.batch for r in run.readings] == ["B-1", None]
+
+
+def test_a_file_that_is_no_run_is_quoted_only_by_a_short_excerpt() -> None:
+    """A system file's first line is not echoed: the message quotes at most 12 characters."""
+    data = b"root:x:0:0:root:/root:/bin/bash\ndaemon:x:1:1::/usr/sbin:/usr/sbin/nologin\n"
+    with pytest.raises(InputError, match="header row missing") as caught:
+        normalise(decode_table(data))
+    assert "root:x:0:0:r…" in str(caught.value)
+    assert "/bin/bash" not in str(caught.value)
+
+
+def test_a_cell_quoted_in_a_message_is_short_and_escaped() -> None:
+    """A bad cell is quoted with control characters escaped and cut at 40 characters."""
+    cell = "\x1b[31m" + "x" * 100
+    data = f"seq,sample_id,kind,analyte,response\n1,S,sample,Cu,{cell}\n".encode()
+    with pytest.raises(InputError) as caught:
+        normalise(decode_table(data))
+    assert "\x1b" not in str(caught.value)
+    assert "got '\\x1b[31m" + "x" * 35 + "…'" in str(caught.value)

@@ -101,3 +101,12 @@ def test_a_control_rejection_asks_for_the_run() -> None:
     document = verdict_to_json(judged, source_path="r.csv", sha256=None, criteria_sha256=None)
     assert document["status"] == "fail"
     assert document["repeat"] == [{"what": "run", "analyte": "Zn", "reasons": ["1-3.5s"]}]
+
+
+def test_a_run_cut_off_after_its_icv_fails_and_asks_for_the_run() -> None:
+    """Missing required QC (no CCV) fails the run with a repeat entry naming the shortfall."""
+    document = _document("")
+    assert document["status"] == "fail"
+    (entry,) = document["repeat"]
+    assert (entry["what"], entry["analyte"]) == ("run", "Zn")
+    assert "0 CCV(s)" in entry["reasons"][0]

@@ -24,6 +24,7 @@ from calwarden.daemon.intake.settling import (
     Unreadable,
     Vanished,
     Wait,
+    may_follow,
     start,
     step,
     to_rescan,
@@ -269,3 +270,20 @@ def test_wanted_files_match_the_inbox_patterns(
     plan = plan_watch(build_config({}, "test"), inbox=inbox, out=tmp_path / "out")
     watched = plan.inboxes[0]
     assert wanted(watched, watched.path / relative) is expected
+
+
+@pytest.mark.parametrize(
+    ("target", "follow", "expected"),
+    [
+        ("inside/run.csv", False, True),
+        ("../etc/passwd", False, False),
+        ("../etc/passwd", True, True),
+    ],
+)
+def test_a_target_outside_the_inbox_is_followed_only_when_allowed(
+    inbox: Path, tmp_path: Path, target: str, follow: bool, expected: bool
+) -> None:
+    """A file's real path must lie in the inbox unless follow_links_outside is set."""
+    config = build_config({"watch": {"follow_links_outside": follow}}, "test")
+    watched = plan_watch(config, inbox=inbox, out=tmp_path / "out").inboxes[0]
+    assert may_follow(watched, (watched.path / target).resolve()) is expected

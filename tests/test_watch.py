@@ -548,3 +548,51 @@ def test_lost_ledger_never_overwrites_an_archived_verdict(
     again.wait_outcomes(2)
     assert verdict(out / "run@v1.verdict.json")["source"]["sha256"] == sha256(PASSING)
     assert verdict(out / "run@v2.verdict.json")["source"]["sha256"] == sha256(FAILING)
+
+
+# --------------------------------------------------------------------------- links
+
+
+def test_link_out_of_the_inbox_is_skipped_unread_and_logged(
+    inbox: Path,
+    out: Path,
+    tmp_path: Path,
+    start: Callable[[WatchPlan], Running],
+    events: list[dict[str, Any]],
+) -> None:
+    """inbox/passwd.csv → a file outside: never judged, a link_outside_inbox event instead."""
+    secret = tmp_path / "elsewhere" / "passwd"
+    secret.parent.mkdir()
+    secret.write_text("root:x:0:0:root:/root:/bin/bash\n", encoding="utf-8")
+    (inbox / "passwd.csv").symlink_to(secret)
+    running = start(plan_for(inbox, out))
+    (inbox / "sentinel.csv").write_bytes(FAILING)
+    running.wait_path("sentinel.csv")
+    assert running.watcher.wait_idle(DEADLINE)
+    assert [o.path for o in running.outcomes] == ["sentinel.csv"]
+    (refused,) = named(events, "link_outside_inbox")
+    assert (refused["path"], refused["target"]) == ("passwd.csv", str(secret.resolve()))
+    assert not list(out.glob("passwd*"))
+
+
+def test_link_out_of_the_inbox_is_judged_when_the_setting_allows(
+    inbox: Path, out: Path, tmp_path: Path, start: Callable[[WatchPlan], Running]
+) -> None:
+    """watch.follow_links_outside: true judges what the link points at."""
+    target = tmp_path / "share" / "run.csv"
+    target.parent.mkdir()
+    target.write_bytes(PASSING)
+    (inbox / "run.csv").symlink_to(target)
+    running = start(plan_for(inbox, out, follow_links_outside=True))
+    assert running.wait_path("run.csv").status == "pass"
+
+
+def test_link_within_the_inbox_is_judged(
+    inbox: Path, out: Path, start: Callable[[WatchPlan], Running]
+) -> None:
+    """A link whose target is inside the inbox is an ordinary file there."""
+    (inbox / "archive").mkdir()
+    (inbox / "archive" / "run.txt").write_bytes(PASSING)
+    (inbox / "run.csv").symlink_to(inbox / "archive" / "run.txt")
+    running = start(plan_for(inbox, out))
+    assert running.wait_path("run.csv").status == "pass"

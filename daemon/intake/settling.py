@@ -233,6 +233,16 @@ def wanted(inbox: Inbox, path: Path) -> bool:
     return not any(part.startswith(".") for part in relative.parts[:-1])
 
 
+def may_follow(inbox: Inbox, target: Path) -> bool:
+    """Whether a file whose real path is ``target`` may be read for ``inbox``.
+
+    A symbolic link out of the inbox (``passwd.csv`` → a system file) would have
+    calwarden read, and quote in its outputs, whatever it may read; it is left
+    unread unless the inbox allows it (``follow_links_outside``).
+    """
+    return inbox.follow_links_outside or target.is_relative_to(inbox.path)
+
+
 @dataclass(frozen=True, slots=True)
 class Listed:
     """A wanted file a rescan found: its path, its path in the inbox, its size and mtime."""

@@ -164,6 +164,7 @@ class Watcher:
         self._ledger: Ledger | None = None
         self._thread: threading.Thread | None = None
         self._unreachable: set[str] = set()
+        self._links_refused: set[Path] = set()  # logged once each, not at every rescan
         self._observer_failing = False
         self._stale_charts: dict[SeriesKey, None] = {}  # ordered: drawn oldest first
         self._pictures_pending = True  # checked in the ledger at start
@@ -350,6 +351,8 @@ class Watcher:
             return
         if not stat.S_ISREG(info.st_mode) or not wanted(inbox, path):
             return
+        if self._link_outside(inbox, path):
+            return
         assert self._ledger is not None
         recorded = self._ledger.files.seen(inbox.name, path.relative_to(inbox.path).as_posix())
         seen = settling.Hinted(
@@ -414,10 +417,37 @@ class Watcher:
             self._follow(candidate, step)
             return
         assert step.state is not None
+        if self._link_outside(candidate.inbox, candidate.path):
+            self._candidates.pop(candidate.path, None)  # made a link while settling
+            return
         read = self._read(candidate.path, step.state.size)
         self._follow(
             candidate, settling.step(step.state, read[0], time.monotonic(), self.timing), read
         )
+
+    def _link_outside(self, inbox: Inbox, path: Path) -> bool:
+        """Whether ``path`` leads out of its inbox and stays unread (``settling.may_follow``).
+
+        Such a link is skipped without being opened, and logged once.
+        """
+        if inbox.follow_links_outside:
+            return False
+        try:
+            target = path.resolve(strict=True)
+        except (OSError, RuntimeError):
+            return False  # gone, or a loop: the stat or read that follows says so
+        if settling.may_follow(inbox, target):
+            self._links_refused.discard(path)
+            return False
+        if path not in self._links_refused:
+            self._links_refused.add(path)
+            log.warning(
+                "link_outside_inbox",
+                inbox=inbox.name,
+                path=path.relative_to(inbox.path).as_posix(),
+                target=str(target),
+            )
+        return True
 
     @staticmethod
     def _read(path: Path, size: int) -> tuple[Observation, bytes | None, str]:
@@ -580,6 +610,8 @@ class Watcher:
         for entry in entries:
             path = Path(entry.path)
             if path in self._candidates or not wanted(inbox, path):
+                continue
+            if entry.is_symlink() and self._link_outside(inbox, path):
                 continue
             try:
                 info = entry.stat()

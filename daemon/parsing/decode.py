@@ -7,14 +7,23 @@ reader counts them (:func:`count_line_ends`), so a line number here is the line
 number every later stage reports.
 
 The native format is UTF-8 (a byte-order mark is accepted) and says so in its
-messages; an instrument export's format chooses its ``encoding`` (``auto``,
-``utf-8``, ``utf-16``, ``cp1252``) and the messages point at that setting.
+messages; an instrument export's format chooses its ``encoding`` (``auto``, or
+any text codec Python knows: ``utf-8``, ``utf-16``, ``cp1252``, ``cp1250``,
+``shift_jis``, ``gb18030``…) and the messages point at that setting.
+
+In ``auto``, bytes that are not UTF-8 are read as Windows-1252 only when the
+result is plausible Western text (:func:`implausible_characters`): text in
+another code page (Shift-JIS, GB18030, a Central-European one) read as
+Windows-1252 turns into symbols strung together (``空白`` in GB18030 reads as
+``¿Õ°×``), and judging that would be judging nonsense.
 """
 
 from __future__ import annotations
 
 import codecs
+import re
 import stat
+import unicodedata
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -26,6 +35,8 @@ __all__ = [
     "check_bytes",
     "count_line_ends",
     "decode",
+    "excerpt",
+    "implausible_characters",
     "read_file_bytes",
 ]
 
@@ -129,9 +140,11 @@ def _native(data: bytes) -> Text:
 
 def _configured(data: bytes, encoding: str) -> Text:
     """Decode as a format's ``encoding`` says; ``auto`` tries UTF-8, then Windows-1252."""
+    if encoding != "auto":
+        encoding = codecs.lookup(encoding).name  # "UTF8", "utf_8" → "utf-8"
     for mark, codec in _UTF16_MARKS:
-        if data.startswith(mark):
-            if encoding not in ("auto", "utf-16"):
+        if data.startswith(mark) and not encoding.startswith("utf-32"):  # FF FE 00 00
+            if encoding not in ("auto", "utf-16", codec):
                 raise InputError(
                     f"the file starts with a UTF-16 byte-order mark, but format.encoding is "
                     f"{encoding}",
@@ -147,16 +160,108 @@ def _configured(data: bytes, encoding: str) -> Text:
         try:
             text = data.decode("utf-8")
         except UnicodeDecodeError:
-            # Not UTF-8: a Windows program's export, in its ANSI code page.
-            return _decode_as(data, "cp1252", "cp1252", 0)
+            # Not UTF-8: a Windows program's export, in its ANSI code page, if it reads as one.
+            return _western_fallback(data)
         _check_binary(data, configured=True)
         return Text(text, "utf-8")
     return _decode_as(data, encoding, encoding, 0)
 
 
+def _ascii_compatible(codec: str) -> bool:
+    """Whether ``codec`` writes ASCII as ASCII bytes, so the byte-wise binary check holds."""
+    try:
+        return "\t\n\r ,;.0-9A-Za-z".encode(codec) == b"\t\n\r ,;.0-9A-Za-z"
+    except (UnicodeError, LookupError):
+        return False
+
+
+def excerpt(text: str, limit: int = 40) -> str:
+    """At most ``limit`` characters of ``text`` for a message, control characters escaped.
+
+    File text quoted in a message reaches verdicts, reports and e-mails: it is
+    kept short, and nothing in it can move a terminal's cursor or fold a line.
+    """
+    short = text[:limit]
+    shown = "".join(char if char.isprintable() else f"\\x{ord(char):02x}" for char in short)
+    return shown + ("…" if len(text) > limit else "")
+
+
+#: Non-letters outside ASCII that Western lab text holds on their own (units, signs,
+#: typographic quotes and dashes); any other non-ASCII non-letter is implausible.
+_LAB_SYMBOLS = frozenset("°±µ²³·×÷‰€£§–—‘’‚“”„…•«»©®™\u00a0")
+#: Western words hold at most this many non-ASCII letters in a row ("ção"); Cyrillic or
+#: Greek read as Windows-1252 are whole words of them ("ïðîáà").
+_LONGEST_FOREIGN_RUN = 4
+_NON_ASCII_RUN = re.compile(r"[^\x00-\x7f]+")
+#: A fallback decoding is refused at this many implausible characters, when they
+#: are also at least this share of the text's non-ASCII characters.
+_IMPLAUSIBLE_COUNT = 3
+_IMPLAUSIBLE_SHARE = 0.05
+
+
+def implausible_characters(text: str) -> list[int]:
+    """Offsets of the characters of ``text`` that Western text seldom holds.
+
+    A non-ASCII character is implausible when it is not a letter (Unicode
+    category L) and either is not one of the symbols lab files use on their own
+    (``°``, ``±``, ``µ``, ``²``, ``€``, quotes, dashes…) or stands next to
+    another non-ASCII character; and every character of a run of more than
+    four non-ASCII characters is. Western text keeps its accented letters among
+    ASCII ones (``Müller``, ``Solução``) and its symbols apart (``25 °C``,
+    ``±0.5``); a multi-byte or other code page read as Windows-1252 strings
+    symbols together (``¿Õ°×``, ``³¹ka``) or makes whole words of accented
+    letters (Russian ``проба`` as ``ïðîáà``). A limit: text that reads as
+    Western words in both code pages (Czech ``Řeka`` as ``Øeka``, most
+    Hungarian) cannot always be told apart this way; configure its encoding.
+    ``tests/benchmarks/alarms_encoding.py`` measures both rates.
+    """
+    found = {
+        offset
+        for run in _NON_ASCII_RUN.finditer(text)
+        if len(run.group()) > _LONGEST_FOREIGN_RUN
+        for offset in range(run.start(), run.end())
+    }
+    for offset, char in enumerate(text):
+        if char.isascii() or unicodedata.category(char).startswith("L"):
+            continue
+        beside = text[offset - 1 : offset] + text[offset + 1 : offset + 2]
+        if char not in _LAB_SYMBOLS or not beside.isascii():
+            found.add(offset)
+    return sorted(found)
+
+
+def _western_fallback(data: bytes) -> Text:
+    """``auto`` on bytes that are not UTF-8: Windows-1252, refused when it reads as nonsense."""
+    _check_binary(data, configured=True)
+    try:
+        text = data.decode("cp1252")
+    except UnicodeDecodeError as exc:
+        bad = data[exc.start : exc.start + 1].hex()
+        raise InputError(
+            f"the file is neither UTF-8 nor Windows-1252 (cp1252) text: byte 0x{bad} at "
+            f"offset {exc.start} cannot be decoded (set format.encoding to the file's "
+            f"encoding, e.g. cp1250, shift_jis, gb18030)",
+            _line_at(data, exc.start, "cp1252"),
+        ) from None
+    odd = implausible_characters(text)
+    foreign = sum(1 for char in text if not char.isascii())
+    if len(odd) >= _IMPLAUSIBLE_COUNT and len(odd) >= _IMPLAUSIBLE_SHARE * foreign:
+        first = odd[0]
+        shown = excerpt(text[first:].splitlines()[0], 8)
+        raise InputError(
+            f"the file is not UTF-8, and read as Windows-1252 it is implausible text: "
+            f"{len(odd)} of its {foreign} non-ASCII characters are "
+            f"symbols no Western text holds there "
+            f"(the first on this line: '{shown}'); it is in another encoding: set "
+            f"format.encoding to it (e.g. cp1250, shift_jis, gb18030)",
+            count_line_ends(text[:first]) + 1,
+        )
+    return Text(text, "cp1252")
+
+
 def _decode_as(data: bytes, codec: str, label: str, skipped: int) -> Text:
     """``data`` decoded with ``codec``; ``skipped``: the bytes of a mark before it."""
-    utf16 = codec.startswith("utf-16")
+    utf16 = codec.startswith("utf-16") or not _ascii_compatible(codec)
     if not utf16:
         _check_binary(data, configured=True)  # UTF-8 and Windows-1252 keep control bytes
     try:

@@ -29,7 +29,7 @@ from datetime import datetime
 from operator import itemgetter
 from pathlib import Path
 
-from calwarden.daemon.parsing.decode import MAX_FILE_BYTES, decode, read_file_bytes
+from calwarden.daemon.parsing.decode import MAX_FILE_BYTES, decode, excerpt, read_file_bytes
 from calwarden.daemon.parsing.table import RawTable, header_key, split_table
 from calwarden.rules.errors import ConfigError, InputError
 from calwarden.rules.model import Kind, Reading, Run
@@ -107,11 +107,13 @@ def _number(text: str, line: int, column: str) -> float:
         value = float(text)
     except ValueError:
         hint = " (use a point as the decimal separator)" if "," in text else ""
-        raise InputError(f"{column} must be a number, got '{text}'{hint}", line, column) from None
+        raise InputError(
+            f"{column} must be a number, got '{excerpt(text)}'{hint}", line, column
+        ) from None
     if "_" in text or not text.isascii():
-        raise InputError(f"{column} must be a plain number, got '{text}'", line, column)
+        raise InputError(f"{column} must be a plain number, got '{excerpt(text)}'", line, column)
     if not math.isfinite(value):
-        raise InputError(f"{column} must be a finite number, got '{text}'", line, column)
+        raise InputError(f"{column} must be a finite number, got '{excerpt(text)}'", line, column)
     return value
 
 
@@ -121,9 +123,11 @@ def _seq(text: str, line: int) -> int:
     try:
         value = int(text)
     except ValueError:
-        raise InputError(f"seq must be a whole number, got '{text}'", line, "seq") from None
+        raise InputError(
+            f"seq must be a whole number, got '{excerpt(text)}'", line, "seq"
+        ) from None
     if "_" in text or not text.isascii():
-        raise InputError(f"seq must be a plain whole number, got '{text}'", line, "seq")
+        raise InputError(f"seq must be a plain whole number, got '{excerpt(text)}'", line, "seq")
     if value < 0:
         raise InputError(f"seq must not be negative, got {value}", line, "seq")
     return value
@@ -132,7 +136,7 @@ def _seq(text: str, line: int) -> int:
 def _kind(text: str, line: int) -> Kind:
     kind = KIND_WORDS.get(text.lower())
     if kind is None:
-        shown = f"unknown kind '{text}'" if text else "kind is empty"
+        shown = f"unknown kind '{excerpt(text)}'" if text else "kind is empty"
         raise InputError(f"{shown}; allowed kinds: {ALLOWED_KINDS}", line, "kind")
     return kind
 
@@ -142,7 +146,8 @@ def _timestamp(text: str, line: int) -> datetime:
         return parse_iso_time(text)
     except ValueError:
         raise InputError(
-            f"acquired must be an ISO 8601 date and time such as 2024-05-01T14:30:00, got '{text}'",
+            "acquired must be an ISO 8601 date and time such as 2024-05-01T14:30:00, "
+            f"got '{excerpt(text)}'",
             line,
             "acquired",
         ) from None
@@ -172,14 +177,14 @@ def _resolve_columns(table: RawTable, mapping: Mapping[str, str] | None) -> dict
             f"'{wanted[f]}'" if wanted[f] == f else f"'{wanted[f]}' (for {f})" for f in missing
         )
         plural = "s" if len(missing) > 1 else ""
-        hint = (
-            "; is the header row missing?"
-            if not any(field in found for field in NATIVE_FIELDS)
-            else ""
-        )
+        header = ", ".join(name.strip() for name in table.header)
+        if any(field in found for field in NATIVE_FIELDS):
+            shown = f"the header has: {excerpt(header, 200)}"
+        else:
+            # Perhaps not a run at all (a link to a system file): quote only its start.
+            shown = f"the first row begins '{excerpt(header, 12)}'; is the header row missing?"
         raise InputError(
-            f"required column{plural} {names} missing; the header has: "
-            f"{', '.join(name.strip() for name in table.header)}{hint}",
+            f"required column{plural} {names} missing; {shown}",
             table.header_line,
             missing[0],
         )

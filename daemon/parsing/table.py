@@ -19,6 +19,7 @@ import io
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 
+from calwarden.daemon.parsing.decode import excerpt
 from calwarden.rules.errors import InputError
 
 __all__ = [
@@ -75,10 +76,11 @@ def check_header(header: Sequence[str], line: int) -> None:
         if not key:
             raise InputError(f"header column {position} has no name", line)
         if key in seen:
+            shown = excerpt(name.strip())
             raise InputError(
-                f"header name '{name.strip()}' is given twice (columns {seen[key]} and {position})",
+                f"header name '{shown}' is given twice (columns {seen[key]} and {position})",
                 line,
-                name.strip(),
+                shown,
             )
         seen[key] = position
 

@@ -231,6 +231,7 @@ class Inbox:
     polling: bool
     instrument: str | None
     config: AppConfig  # the criteria and layout this inbox's files are judged with
+    follow_links_outside: bool = False  # judge links whose target is outside the inbox
 
 
 @dataclass(frozen=True, slots=True)
@@ -331,6 +332,11 @@ def plan_watch(
                 ignore=settings.ignore,
                 recursive=entry.recursive,
                 polling=settings.polling if entry.polling is None else entry.polling,
+                follow_links_outside=(
+                    settings.follow_links_outside
+                    if entry.follow_links_outside is None
+                    else entry.follow_links_outside
+                ),
                 instrument=entry.instrument,
                 config=AppConfig(
                     criteria=entry.criteria or config.criteria,

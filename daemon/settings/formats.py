@@ -8,7 +8,10 @@ native rules then judge; nothing in ``rules/`` knows about layouts.
 
 from __future__ import annotations
 
+import codecs
+import difflib
 import re
+from encodings.aliases import aliases
 from typing import Literal
 
 from pydantic import Field, field_validator, model_validator
@@ -159,10 +162,12 @@ class ExportFormat(Section):
     file_type: Literal["csv", "xlsx", "auto"] = Field(
         default="auto", description="file type; auto: by the file's extension and content"
     )
-    encoding: Literal["auto", "utf-8", "utf-16", "cp1252"] = Field(
+    encoding: str = Field(
         default="auto",
-        description="auto: a byte-order mark decides (UTF-8, UTF-16 LE/BE), else UTF-8 "
-        "when the bytes are valid UTF-8, else Windows-1252",
+        description="auto, or any text encoding Python knows (utf-8, utf-16, cp1252, cp1250, "
+        "shift_jis, gb18030, …); auto: a byte-order mark decides (UTF-8, UTF-16 LE/BE), else "
+        "UTF-8 when the bytes are valid UTF-8, else Windows-1252 unless that reads as "
+        "implausible text (then the file is refused, to be configured)",
     )
     delimiter: Literal["auto", ",", ";", "\t", "|"] = Field(
         default="auto", description="auto: the one of , ; tab | that splits the header best"
@@ -200,6 +205,28 @@ class ExportFormat(Section):
     )
     run: str | None = Field(default=None, description="run name when the file has none")
     instrument: str | None = Field(default=None, description="instrument name for every row")
+
+    @field_validator("encoding")
+    @classmethod
+    def _known_encoding(cls, value: str) -> str:
+        if value == "auto":
+            return value
+        try:
+            codecs.lookup(value)
+            b"a".decode(value)  # a bytes-to-bytes codec (base64) is no text encoding
+        except UnicodeError:
+            pass  # a known text encoding that one byte does not make (utf-16)
+        except LookupError:
+            text_codecs = {  # base64_codec, zlib_codec, rot_13 turn bytes into bytes
+                alias: name
+                for alias, name in aliases.items()
+                if not name.endswith(("_codec", "13"))
+            }
+            names = ["auto", *sorted(set(text_codecs.values()) | set(text_codecs))]
+            close = difflib.get_close_matches(value.lower().replace("-", "_"), names, n=1)
+            hint = f" (did you mean {close[0].replace('_', '-')}?)" if close else ""
+            raise ValueError(f"'{value}' is not a text encoding Python knows{hint}") from None
+        return value
 
     @field_validator("columns")
     @classmethod

@@ -71,6 +71,11 @@ class WatchSettings(Section):
         default=DEFAULT_IGNORE,
         description="file names never judged: temporary names of files still being written",
     )
+    follow_links_outside: bool = Field(
+        default=False,
+        description="judge a symbolic link in an inbox whose target lies outside the inbox; "
+        "by default such a link is skipped unread, with a link_outside_inbox log event",
+    )
     log_max_bytes: int = Field(
         default=10_000_000, ge=10_000, description="the log file is rotated at this size"
     )
@@ -97,6 +102,9 @@ class InboxSettings(Section):
         description="also watch sub-folders (outputs then mirror the sub-folders)",
     )
     polling: bool | None = Field(default=None, description="default watch.polling")
+    follow_links_outside: bool | None = Field(
+        default=None, description="default watch.follow_links_outside"
+    )
     format: ExportFormat | None = Field(
         default=None, description="this instrument's export layout; default the top-level format"
     )
