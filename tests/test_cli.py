@@ -39,6 +39,20 @@ def test_json_flag_prints_only_the_verdict(path: Path, capsys: pytest.CaptureFix
     assert document["status"] in {"pass", "fail", "error"}
 
 
+def test_an_extreme_nominal_fails_quietly_with_json(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A standard of 1e300 with --json: exit 1, one JSON document, nothing on stderr."""
+    lines = PASSING.read_text(encoding="utf-8").splitlines()
+    lines[5] = lines[5].replace(",10644.6,1,", ",10644.6,1e300,")  # CAL-1 Zn
+    path = tmp_path / "extreme.csv"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    assert main(["check", str(path), "--json"]) == 1
+    captured = capsys.readouterr()
+    assert json.loads(captured.out)["status"] == "fail"
+    assert captured.err == ""
+
+
 def test_summary_names_the_samples_to_rerun(capsys: pytest.CaptureFixture[str]) -> None:
     """The readable summary lists each sample to re-run and why."""
     main(["check", str(FAILING)])
