@@ -322,6 +322,14 @@ def test_a_run_name_of_only_control_characters_falls_back_to_the_path() -> None:
     )
 
 
+def test_text_body_escapes_terminal_control_characters() -> None:
+    """A run and a path carrying ESC sequences and CR appear escaped in the text body."""
+    alert = _fail_alert(run="R\x1b[2J-1", path="a\rb.csv")
+    body = text_body(alert)
+    assert "\x1b" not in body and "\r" not in body
+    assert "R\\x1b[2J-1" in body and "a\\rb.csv" in body
+
+
 # --------------------------------------------------------------------------- the message
 
 

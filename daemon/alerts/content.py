@@ -27,6 +27,7 @@ from email.utils import format_datetime
 from typing import Any
 
 from calwarden.daemon.control_log.log import series_name
+from calwarden.daemon.outputs.printable import printable_strings
 from calwarden.daemon.outputs.verdict_json import CAUTION
 from calwarden.daemon.outputs.verdict_model import FindingEntry, VerdictDocument
 from calwarden.daemon.stores.records import SeriesKey
@@ -81,12 +82,14 @@ class _UnfoldedSubject(EmailPolicy):
 
     def fold(self, name: str, value: str) -> str:
         if name.lower() == "subject" and value.isascii():
-            return EmailPolicy.fold(self.clone(max_line_length=998), name, value)
-        return super().fold(name, value)
+            wide: EmailPolicy = self.clone(max_line_length=998)
+            return str(EmailPolicy.fold(wide, name, value))
+        return str(super().fold(name, value))
 
     def fold_binary(self, name: str, value: str) -> bytes:
         if name.lower() == "subject" and value.isascii():
-            return EmailPolicy.fold_binary(self.clone(max_line_length=998), name, value)
+            wider: EmailPolicy = self.clone(max_line_length=998)
+            return bytes(EmailPolicy.fold_binary(wider, name, value))
         return super().fold_binary(name, value)
 
 
@@ -411,7 +414,8 @@ def _sections(alert: Mapping[str, Any]) -> tuple[str, list[_Section]]:
 
 
 def text_body(alert: Mapping[str, Any]) -> str:
-    opening, sections = _sections(alert)
+    """The plain-text part; file text in it has its control characters escaped."""
+    opening, sections = _sections(printable_strings(dict(alert)))
     parts = [opening, ""]
     for section in sections:
         parts.append(section.title)
