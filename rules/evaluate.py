@@ -7,6 +7,7 @@ out, nothing read or written on the way.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, replace
 from statistics import fmean
@@ -225,46 +226,39 @@ def _calibrate(
     non_zero = [value for value in x if value > 0]
     istd = [r.istd_response for r in standards if r.istd_response is not None]
     fit: Fit | None = None
+    points: list[StandardPoint] = []
+    rse = None
+    mandel = None
+    limits = None
+    blanks = [r.signal for r in rows if r.kind is Kind.BLANK]
     problem = _mixed_basis(rows, use_blanks=criteria.blank != "none")
+    if problem is None and not all(math.isfinite(value) for value in y):
+        problem = _beyond_arithmetic(standards, y)  # a blank subtracted overflowed
     if problem is None:
         try:
             fit = fit_calibration(x, y, criteria.model, criteria.weighting)
-        except (ValueError, ArithmeticError) as error:  # degenerate numbers: no fit, said why
-            problem = str(error)
-
-    points = []
-    for reading, value in zip(standards, y, strict=False):
-        nominal = reading.nominal or 0.0
-        back = fit.invert(value) if fit is not None else None
-        error_pct = 100.0 * (back - nominal) / nominal if back is not None and nominal > 0 else None
-        points.append(
-            StandardPoint(
-                reading.sample_id, reading.seq, reading.line, nominal, value, back, error_pct
-            )
-        )
-    judged = [(p.nominal, p.back_calculated) for p in points if p.nominal > 0]
-    rse = None
-    if fit is not None and all(back is not None for _, back in judged):
-        rse = relative_standard_error(
-            [nominal for nominal, _ in judged],
-            [back for _, back in judged if back is not None],
-            PARAMETERS[criteria.model],
-        )
-    mandel = None
-    if (
-        fit is not None
-        and criteria.model is Model.LINEAR
-        and len(set(non_zero)) >= _MANDEL_MIN_LEVELS
-    ):
-        mandel = mandel_test(
-            x,
-            y,
-            criteria.mandel_alpha,
-            _linearity_weighting(criteria),
-            criteria.linearity_reading_rsd_pct,
-        )
-    blanks = [r.signal for r in rows if r.kind is Kind.BLANK]
-    limits = detection_limits(fit, blanks) if fit is not None else None
+            points = _standard_points(standards, y, fit)
+            rse = _rse(points, fit, criteria)
+            if criteria.model is Model.LINEAR and len(set(non_zero)) >= _MANDEL_MIN_LEVELS:
+                mandel = mandel_test(
+                    x,
+                    y,
+                    criteria.mandel_alpha,
+                    _linearity_weighting(criteria),
+                    criteria.linearity_reading_rsd_pct,
+                )
+            limits = detection_limits(fit, blanks)
+            if not all(math.isfinite(c) for c in fit.coefficients):
+                raise ArithmeticError("the coefficients overflow")
+        except (ArithmeticError, np.linalg.LinAlgError):
+            # Numbers no double arithmetic can fit (1e300, 5e-324): said, never raised.
+            fit, rse, mandel, limits = None, None, None, None
+            problem = _beyond_arithmetic(standards, y)
+        except ValueError as error:  # degenerate points (too few levels…): no fit, said why
+            fit, rse, mandel, limits = None, None, None, None
+            problem = _beyond_arithmetic(standards, y) if points else str(error)
+    if fit is None:
+        points = _standard_points(standards, y, None)
     return Calibration(
         analyte=analyte,
         unit=unit,
@@ -280,6 +274,60 @@ def _calibrate(
         range_low=min(non_zero) if non_zero else None,
         range_high=max(non_zero) if non_zero else None,
         problem=problem,
+    )
+
+
+def _standard_points(
+    standards: Sequence[Reading], y: Sequence[float], fit: Fit | None
+) -> list[StandardPoint]:
+    points = []
+    for reading, value in zip(standards, y, strict=False):
+        nominal = reading.nominal or 0.0
+        back = fit.invert(value) if fit is not None else None
+        error_pct = 100.0 * (back - nominal) / nominal if back is not None and nominal > 0 else None
+        points.append(
+            StandardPoint(
+                reading.sample_id, reading.seq, reading.line, nominal, value, back, error_pct
+            )
+        )
+    return points
+
+
+def _rse(points: Sequence[StandardPoint], fit: Fit, criteria: AnalyteCriteria) -> float | None:
+    judged = [(p.nominal, p.back_calculated) for p in points if p.nominal > 0]
+    if not all(back is not None for _, back in judged):
+        return None
+    return relative_standard_error(
+        [nominal for nominal, _ in judged],
+        [back for _, back in judged if back is not None],
+        PARAMETERS[criteria.model],
+    )
+
+
+def _beyond_arithmetic(standards: Sequence[Reading], y: Sequence[float]) -> str:
+    """Why a calibration of extreme numbers has no fit, naming its most extreme value.
+
+    The most extreme value is the one farthest from 1 in orders of magnitude (a
+    non-finite one first): 1e300 and 5e-324 both overflow or vanish in the sums of
+    squares of a least-squares fit.
+    """
+
+    def distance(value: float) -> float:
+        if not math.isfinite(value):
+            return math.inf
+        return abs(math.log10(abs(value))) if value != 0.0 else 0.0
+
+    candidates = [
+        (distance(value), reading, what, value)
+        for reading, signal in zip(standards, y, strict=False)
+        for what, value in (("nominal", reading.nominal or 0.0), ("response", signal))
+    ]
+    _, reading, what, value = max(candidates, key=lambda c: c[0])
+    shown = "blank-corrected response out of range" if not math.isfinite(value) else f"{value:g}"
+    return (
+        f"the calibration cannot be fitted: its numbers are beyond what the arithmetic "
+        f"holds; the most extreme is {reading.sample_id} (line {reading.line}, seq "
+        f"{reading.seq}) {what} {shown}"
     )
 
 

@@ -306,6 +306,30 @@ def test_hostile_error_path_injects_no_bcc_header() -> None:
     assert "\n" not in str(parsed["Subject"])
 
 
+@pytest.mark.parametrize("length", range(0, 64, 3))
+def test_a_run_name_with_cr_lf_gives_one_clean_subject_line(length: int) -> None:
+    """A run named ``…\\r\\n…`` of any length: the raw Subject header is one line, never empty."""
+    alert = _fail_alert(run="R" * length + "\r\n" + "S" * 14, instrument="ICP-2")
+    raw = _compose(alert).as_bytes().split(b"\r\n\r\n", 1)[0]
+    line = next(line for line in raw.split(b"\r\n") if line.startswith(b"Subject:"))
+    assert line == b"Subject: " + subject(alert).encode("ascii")
+
+
+def test_a_run_name_of_only_control_characters_falls_back_to_the_path() -> None:
+    """A run named CR LF is no name: the subject names the file instead of an empty place."""
+    assert subject(_fail_alert(run="\r\n", instrument="")).startswith(
+        "[calwarden] FAIL 2026/run-1204.csv: "
+    )
+
+
+def test_text_body_escapes_terminal_control_characters() -> None:
+    """A run and a path carrying ESC sequences and CR appear escaped in the text body."""
+    alert = _fail_alert(run="R\x1b[2J-1", path="a\rb.csv")
+    body = text_body(alert)
+    assert "\x1b" not in body and "\r" not in body
+    assert "R\\x1b[2J-1" in body and "a\\rb.csv" in body
+
+
 # --------------------------------------------------------------------------- the message
 
 

@@ -39,6 +39,20 @@ def test_json_flag_prints_only_the_verdict(path: Path, capsys: pytest.CaptureFix
     assert document["status"] in {"pass", "fail", "error"}
 
 
+def test_an_extreme_nominal_fails_quietly_with_json(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A standard of 1e300 with --json: exit 1, one JSON document, nothing on stderr."""
+    lines = PASSING.read_text(encoding="utf-8").splitlines()
+    lines[5] = lines[5].replace(",10644.6,1,", ",10644.6,1e300,")  # CAL-1 Zn
+    path = tmp_path / "extreme.csv"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    assert main(["check", str(path), "--json"]) == 1
+    captured = capsys.readouterr()
+    assert json.loads(captured.out)["status"] == "fail"
+    assert captured.err == ""
+
+
 def test_summary_names_the_samples_to_rerun(capsys: pytest.CaptureFixture[str]) -> None:
     """The readable summary lists each sample to re-run and why."""
     main(["check", str(FAILING)])
@@ -325,3 +339,45 @@ def test_unknown_rule_suggests_the_nearest(capsys: pytest.CaptureFixture[str]) -
     """A mistyped rule id gets a did-you-mean with the nearest ids."""
     assert main(["rules", "check.recovry"]) == 2
     assert "did you mean check.recovery" in capsys.readouterr().err
+
+
+HOSTILE_RUN = "BWL\x1b[2J\x1b]0;owned\x07-RUN"
+
+
+def _hostile_run(tmp_path: Path) -> Path:
+    """The failing fixture with its run named with terminal escapes, in a file named with CR."""
+    text = FAILING.read_text(encoding="utf-8").replace("BWL-ICPMS-2-20261124-A", HOSTILE_RUN)
+    path = tmp_path / "run\rone.csv"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def _controls(text: str) -> set[str]:
+    return {c for c in text if (ord(c) < 0x20 and c != "\n") or 0x7F <= ord(c) < 0xA0}
+
+
+def test_terminal_summary_escapes_control_characters(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A run named with ESC sequences in a file named with CR: the summary shows escapes."""
+    main(["check", str(_hostile_run(tmp_path))])
+    out = capsys.readouterr().out
+    assert _controls(out) == set()
+    assert "run:        BWL\\x1b[2J\\x1b]0;owned\\x07-RUN" in out
+    assert "run\\rone.csv" in out
+
+
+def test_report_file_escapes_control_characters(tmp_path: Path) -> None:
+    """report.txt of the same run holds no raw control character, only their escapes."""
+    main(["check", str(_hostile_run(tmp_path)), "--out", str(tmp_path / "out")])
+    (report,) = (tmp_path / "out").glob("*.report.txt")
+    text = report.read_text(encoding="utf-8")
+    assert _controls(text) == set()
+    assert "BWL\\x1b[2J" in text
+
+
+def test_verdict_json_keeps_the_exact_run_name(tmp_path: Path) -> None:
+    """The verdict JSON is data, not display: it keeps the run name byte for byte."""
+    main(["check", str(_hostile_run(tmp_path)), "--out", str(tmp_path / "out")])
+    (verdict,) = (tmp_path / "out").glob("*.verdict.json")
+    assert json.loads(verdict.read_text(encoding="utf-8"))["run"] == HOSTILE_RUN

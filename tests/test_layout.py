@@ -14,7 +14,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from calwarden.daemon.parsing.exports import Detected, export_table, read_export
-from calwarden.daemon.parsing.native import normalise, read_native
+from calwarden.daemon.parsing.native import decode_table, normalise, read_native
 from calwarden.daemon.parsing.table import RawTable
 from calwarden.daemon.settings.formats import ExportFormat
 from calwarden.rules.errors import InputError
@@ -138,6 +138,20 @@ def test_utf16_without_byte_order_mark_reads_when_configured() -> None:
     table, detected = read(NATIVE.encode("utf-16-le"), layout(encoding="utf-16"))
     assert detected.encoding == "utf-16-le"
     assert len(normalise(table).readings) == 3
+
+
+@pytest.mark.parametrize("mark", [codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE], ids=["le", "be"])
+@pytest.mark.parametrize("encoding", [None, "auto", "utf-16"])
+def test_utf32_text_is_called_utf32(mark: bytes, encoding: str | None) -> None:
+    """A UTF-32 file (its mark starts like UTF-16's) is refused as UTF-32, natively or as export."""
+    codec = "utf-32-le" if mark == codecs.BOM_UTF32_LE else "utf-32-be"
+    data = mark + NATIVE.encode(codec)
+    with pytest.raises(InputError, match="the file is UTF-32 text") as caught:
+        if encoding is None:
+            decode_table(data)
+        else:
+            read(data, layout(encoding=encoding))
+    assert caught.value.line == 1
 
 
 # --------------------------------------------------------------------------- numbers

@@ -134,6 +134,16 @@ def test_status_report_gives_counts_and_last_failure(plan: WatchPlan, running: R
     assert failed.message and failed.message in text
 
 
+def test_status_report_escapes_control_characters_of_a_file(plan: WatchPlan, running: Run) -> None:
+    """A file named with CR holding a run named with ESC: status shows both escaped."""
+    text = FAILING.decode("utf-8").replace("BWL-ICPMS-2-20261124-A", "R\x1b[2J-1")
+    (plan.inboxes[0].path / "tues\rday.csv").write_text(text, encoding="utf-8")
+    running.wait_outcomes(1)
+    report, _ = status_report(plan.state_dir)
+    assert "\x1b" not in report and "\r" not in report
+    assert "tues\\rday.csv: FAIL" in report and "run R\\x1b[2J-1" in report
+
+
 def test_status_report_reads_the_ledger_after_the_daemon_stopped(
     plan: WatchPlan, running: Run
 ) -> None:

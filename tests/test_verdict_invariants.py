@@ -131,21 +131,14 @@ def test_generated_runs_keep_the_invariants(text: str) -> None:
 
 #: Native fixtures whose rows may be mutated, and the numeric columns mutated.
 MUTABLE = ("bwl-metals-pass.csv", "bwl-lc-istd.csv", "bwl-addition.csv", "bwl-metals-fail.csv")
-MUTATED_COLUMNS = ("response", "dilution", "added", "istd_response")
+MUTATED_COLUMNS = ("response", "nominal", "dilution", "added", "istd_response")
 
 
 def _mutable_cells(name: str) -> tuple[list[str], list[tuple[int, int]]]:
     lines = (PROJECT / "fixtures" / name).read_text(encoding="utf-8").splitlines()
     header = lines[0].split(",")
-    kind_at = header.index("kind")
     columns = [header.index(c) for c in MUTATED_COLUMNS if c in header]
-    cells = [
-        (row, column)
-        for row in range(1, len(lines))
-        # calibration rows are left alone: extreme standards are issue 13 item 12 (an error)
-        if lines[row].split(",")[kind_at] not in ("cal", "blank")
-        for column in columns
-    ]
+    cells = [(row, column) for row in range(1, len(lines)) for column in columns]
     return lines, cells
 
 
@@ -155,7 +148,7 @@ CELLS = {name: _mutable_cells(name) for name in MUTABLE}
 @INVARIANT
 @given(st.data())
 def test_one_extreme_cell_in_a_fixture_keeps_the_invariants(data: st.DataObject) -> None:
-    """One extreme number in one cell of a fixture: refused, or judged and never silent."""
+    """One extreme number in any cell, standards included: refused, or judged and never silent."""
     name = data.draw(st.sampled_from(MUTABLE))
     lines, cells = CELLS[name]
     row, column = data.draw(st.sampled_from(cells))
@@ -166,3 +159,19 @@ def test_one_extreme_cell_in_a_fixture_keeps_the_invariants(data: st.DataObject)
     document = _document(text)
     if document is not None:
         assert problems(document) == [], (name, row + 1, column, value)
+
+
+@pytest.mark.parametrize("value", ["1e300", "1.7976931348623157e308", "5e-324"])
+def test_an_extreme_standard_is_a_failing_calibration_finding(value: str) -> None:
+    """A nominal no fit can hold fails the calibration, naming the standard's line and seq."""
+    lines = (PROJECT / "fixtures/bwl-metals-pass.csv").read_text(encoding="utf-8").splitlines()
+    header = lines[0].split(",")
+    fields = lines[5].split(",")  # CAL-1 Zn, seq 2, on line 6
+    fields[header.index("nominal")] = value
+    document = _document("\n".join([*lines[:5], ",".join(fields), *lines[6:]]) + "\n")
+    assert document is not None
+    assert document["status"] == "fail"
+    present = [f for f in document["findings"] if f["rule"] == "calibration.present"]
+    assert [f["analyte"] for f in present] == ["Zn"]
+    assert "CAL-1 (line 6, seq 2)" in present[0]["message"]
+    assert problems(document) == []

@@ -21,6 +21,7 @@ from waiting import wait_for
 from watchdog.observers.polling import PollingObserver
 
 from calwarden.daemon.intake.accept import Outcome
+from calwarden.daemon.intake.lock import is_locked
 from calwarden.daemon.intake.watcher import StartError, Watcher
 from calwarden.daemon.outputs.files import STEM_LIMIT
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
@@ -465,6 +466,18 @@ def test_second_watcher_on_the_same_plan_cannot_start(
     second = Watcher(plan)
     with pytest.raises(StartError, match="another calwarden daemon"):
         second.start()
+
+
+def test_a_damaged_ledger_cannot_start(inbox: Path, out: Path) -> None:
+    """A ledger that is not a database is a StartError (exit 2) naming it, lock released."""
+    plan = plan_for(inbox, out)
+    plan.state_dir.mkdir(parents=True, exist_ok=True)
+    ledger = plan.state_dir / LEDGER_NAME
+    ledger.write_bytes(b"SQLite format 3\0" + bytes(range(256)) * 20)
+    with pytest.raises(StartError, match="move it aside") as caught:
+        Watcher(plan).start()
+    assert str(ledger) in str(caught.value)
+    assert not is_locked(plan.state_dir)
 
 
 def test_state_lock_is_released_when_the_watcher_stops(

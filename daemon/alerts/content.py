@@ -22,11 +22,12 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from email.message import EmailMessage
-from email.policy import SMTP
+from email.policy import SMTP, EmailPolicy
 from email.utils import format_datetime
 from typing import Any
 
 from calwarden.daemon.control_log.log import series_name
+from calwarden.daemon.outputs.printable import printable_strings
 from calwarden.daemon.outputs.verdict_json import CAUTION
 from calwarden.daemon.outputs.verdict_model import FindingEntry, VerdictDocument
 from calwarden.daemon.stores.records import SeriesKey
@@ -67,6 +68,32 @@ def header_text(value: object, limit: int = HEADER_PIECE_LIMIT) -> str:
     if len(cleaned) > limit:
         cleaned = cleaned[: limit - 1].rstrip() + "…"
     return cleaned
+
+
+class _UnfoldedSubject(EmailPolicy):
+    """SMTP's policy, except that an ASCII subject is written on one line, never folded.
+
+    Python's folder breaks a subject of about 70 to 78 characters right after
+    ``Subject:``, leaving its first line empty, which some mail programs show as a
+    blank subject. A subject is at most ``SUBJECT_LIMIT`` characters, well inside
+    the 998 a line may hold (RFC 5322 §2.1.1); a non-ASCII one is folded as usual,
+    into encoded words of at most 75 characters (RFC 2047 §2).
+    """
+
+    def fold(self, name: str, value: str) -> str:
+        if name.lower() == "subject" and value.isascii():
+            wide: EmailPolicy = self.clone(max_line_length=998)
+            return str(EmailPolicy.fold(wide, name, value))
+        return str(super().fold(name, value))
+
+    def fold_binary(self, name: str, value: str) -> bytes:
+        if name.lower() == "subject" and value.isascii():
+            wider: EmailPolicy = self.clone(max_line_length=998)
+            return bytes(EmailPolicy.fold_binary(wider, name, value))
+        return super().fold_binary(name, value)
+
+
+_MESSAGE_POLICY = _UnfoldedSubject() + SMTP
 
 
 def _plural(count: int, word: str) -> str:
@@ -201,11 +228,12 @@ def subject(alert: Mapping[str, Any]) -> str:
     """
     kind = str(alert.get("kind"))
     word = _WORDS.get(kind, kind.upper())
-    run = str(alert.get("run") or alert.get("path") or "")
-    instrument = str(alert.get("instrument") or "")
+    # Cleaned first, so that a name of only control characters falls back to the path.
+    run = header_text(alert.get("run")) or header_text(alert.get("path"))
+    instrument = header_text(alert.get("instrument"))
     # A run named after its instrument (the usual case) is not worth the instrument twice.
     pieces = (run,) if instrument and instrument in run else (instrument, run)
-    where = " ".join(header_text(piece) for piece in pieces if piece)
+    where = " ".join(piece for piece in pieces if piece)
     if kind == "fail":
         # The root cause leads (findings are listed cause first, failures first), the
         # count follows; a long message is cut, never the count.
@@ -386,7 +414,8 @@ def _sections(alert: Mapping[str, Any]) -> tuple[str, list[_Section]]:
 
 
 def text_body(alert: Mapping[str, Any]) -> str:
-    opening, sections = _sections(alert)
+    """The plain-text part; file text in it has its control characters escaped."""
+    opening, sections = _sections(printable_strings(dict(alert)))
     parts = [opening, ""]
     for section in sections:
         parts.append(section.title)
@@ -450,7 +479,7 @@ def email_message(
     if verdict is not None and len(verdict) > ATTACHMENT_LIMIT_BYTES:
         alert = {**alert, "verdict_not_attached": len(verdict)}
         verdict = None
-    message = EmailMessage(policy=SMTP)
+    message = EmailMessage(policy=_MESSAGE_POLICY)
     message["Subject"] = subject(alert)
     message["From"] = sender
     # With nobody configured (an .eml kept in the outbox folder) the empty group of

@@ -6,6 +6,7 @@ from pathlib import Path
 
 from calwarden.daemon.alerts.sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
 from calwarden.daemon.intake.lock import is_locked, lock_owner
+from calwarden.daemon.outputs.printable import printable
 from calwarden.daemon.stores.control import ControlHistory
 from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
 from calwarden.daemon.stores.files import FileStore
@@ -72,7 +73,8 @@ def status_report(state_dir: Path) -> tuple[str, bool]:
             if found[0].message:
                 lines.append(f"{'':<14}{found[0].message}")
     lines.extend(alert_lines)
-    return "\n".join(lines) + "\n", True
+    # Names and reasons come from files: their control characters are shown escaped.
+    return "\n".join(printable(line) for line in lines) + "\n", True
 
 
 def _alerts(outbox: Outbox, state_dir: Path) -> list[str]:

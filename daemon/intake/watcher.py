@@ -189,7 +189,11 @@ class Watcher:
             ledger = Ledger.open(self.plan.state_dir / LEDGER_NAME)
         except LedgerError as error:
             self._lock.release()
-            raise StartError(str(error)) from None
+            # Exit 2, not 3: no restart repairs a ledger that does not open (README, exit codes).
+            raise StartError(
+                f"{error} (a damaged ledger: restore it from a backup, or move it aside "
+                "to start a new, empty one)"
+            ) from None
         self._ledger = ledger
         self._intake = Intake(ledger, self.plan.inboxes, self.plan.alerts)
         if self.plan.alerts.enabled:

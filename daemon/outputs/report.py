@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
+from calwarden.daemon.outputs.printable import printable_strings
 from calwarden.daemon.outputs.verdict_model import FindingEntry, VerdictDocument
 
 SEVERITY_ORDER = {"fail": 0, "warn": 1, "info": 2}
@@ -246,7 +247,11 @@ def _charts(document: VerdictDocument) -> list[str]:
 
 
 def render(document: VerdictDocument, *, full: bool = True) -> str:
-    """The report; ``full=False`` gives the terminal summary (no calibration or result tables)."""
+    """The report; ``full=False`` gives the terminal summary (no calibration or result tables).
+
+    File text is shown with its control characters escaped (``printable``).
+    """
+    document = printable_strings(document)
     source = document.get("source", {})
     sha = source.get("sha256")
     lines = [

@@ -48,6 +48,9 @@ _CONTROL_SHARE = 0.05
 #: Control bytes that never belong in a text file (tab, LF and CR do).
 _CONTROL_BYTES = bytes([*range(0x00, 0x09), 0x0B, 0x0C, *range(0x0E, 0x20), 0x7F])
 _UTF16_MARKS = ((codecs.BOM_UTF16_LE, "utf-16-le"), (codecs.BOM_UTF16_BE, "utf-16-be"))
+#: UTF-32's marks; the little-endian one begins with UTF-16's, so they are tested first.
+_UTF32_MARKS = (codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE)
+_UTF32_REFUSED = "the file is UTF-32 text, which calwarden does not read; save it as UTF-8"
 
 
 @dataclass(frozen=True, slots=True)
@@ -142,6 +145,8 @@ def _configured(data: bytes, encoding: str) -> Text:
     """Decode as a format's ``encoding`` says; ``auto`` tries UTF-8, then Windows-1252."""
     if encoding != "auto":
         encoding = codecs.lookup(encoding).name  # "UTF8", "utf_8" → "utf-8"
+    if data.startswith(_UTF32_MARKS) and not encoding.startswith("utf-32"):
+        raise InputError(_UTF32_REFUSED, 1)
     for mark, codec in _UTF16_MARKS:
         if data.startswith(mark) and not encoding.startswith("utf-32"):  # FF FE 00 00
             if encoding not in ("auto", "utf-16", codec):
@@ -291,6 +296,8 @@ def _check_binary(data: bytes, *, configured: bool) -> None:
     message then says that rather than only "binary".
     """
     nul = data.find(b"\0")
+    if data.startswith(_UTF32_MARKS):
+        raise InputError(_UTF32_REFUSED, 1)
     if data.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
         reason, offset = "the file is UTF-16 text, which reads as binary here; save it as UTF-8", 0
     elif nul >= 0:
