@@ -808,8 +808,8 @@ def test_chart_draws_the_chosen_series_as_png(
     assert str(drawn) in capsys.readouterr().out
 
 
-def test_a_version_2_ledger_gains_the_limits_split_and_keeps_its_limits(tmp_path: Path) -> None:
-    """Opening a schema-2 ledger adds sd_within, sd_between and runs; old limits read as unsplit."""
+def _version_2_ledger(tmp_path: Path) -> Path:
+    """A ledger as schema 2 left it (no limits split), holding one set of Zn CCV limits."""
     path = tmp_path / LEDGER_NAME
     Ledger.open(path).close()
     with sqlite3.connect(path) as db:
@@ -821,6 +821,12 @@ def test_a_version_2_ledger_gains_the_limits_split_and_keeps_its_limits(tmp_path
             "set_at) VALUES ('BWL-ICPMS-2', 'Zn', 'CCV', '25 µg/L', 100.0, 1.5, 20, 'baseline', "
             "'2026-11-01T00:00:00.000+00:00')"
         )
+    return path
+
+
+def test_a_version_2_ledger_gains_the_limits_split_and_keeps_its_limits(tmp_path: Path) -> None:
+    """Opening a schema-2 ledger adds sd_within, sd_between and runs; old limits read as unsplit."""
+    path = _version_2_ledger(tmp_path)
     upgraded = Ledger.open(path)
     try:
         assert upgraded.database.meta("schema_version") == "3"
@@ -834,17 +840,7 @@ def test_a_version_2_ledger_gains_the_limits_split_and_keeps_its_limits(tmp_path
 
 def test_a_version_2_ledger_reads_its_limits_without_being_upgraded(tmp_path: Path) -> None:
     """A schema-2 ledger opened read-only (status, chart export) reads its limits as unsplit."""
-    path = tmp_path / LEDGER_NAME
-    Ledger.open(path).close()
-    with sqlite3.connect(path) as db:
-        for column in ("sd_within", "sd_between", "runs"):
-            db.execute(f"ALTER TABLE control_limits DROP COLUMN {column}")
-        db.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
-        db.execute(
-            "INSERT INTO control_limits (instrument, analyte, kind, level, centre, sd, n, source, "
-            "set_at) VALUES ('BWL-ICPMS-2', 'Zn', 'CCV', '25 µg/L', 100.0, 1.5, 20, 'baseline', "
-            "'2026-11-01T00:00:00.000+00:00')"
-        )
+    path = _version_2_ledger(tmp_path)
     reader = Ledger.open(path, read_only=True)
     try:
         limits = reader.control.active_limits(ZN_CCV)
