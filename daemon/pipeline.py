@@ -15,7 +15,6 @@ from pathlib import Path
 
 from calwarden.daemon.outputs.verdict_json import verdict_to_json
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
-from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
 from calwarden.daemon.parsing.native import read_native
 from calwarden.daemon.parsing.table import RawTable
 from calwarden.daemon.settings.config import AppConfig
@@ -89,11 +88,7 @@ def judge_file(
     """
     criteria_sha256 = config.criteria.digest()
     try:
-        if data is not None and len(data) > MAX_FILE_BYTES:
-            raise InputError(
-                f"the file is too large to be a run: {len(data)} bytes, the limit is "
-                f"{MAX_FILE_BYTES}"
-            )
+        # The size limit is the readers' (decode.check_bytes), for given bytes too.
         if config.format is None:
             parsed = read_native(path, data=data)
         else:

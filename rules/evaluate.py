@@ -248,8 +248,8 @@ def _calibrate(
                     criteria.linearity_reading_rsd_pct,
                 )
             limits = detection_limits(fit, blanks)
-            if not all(math.isfinite(c) for c in fit.coefficients):
-                raise ArithmeticError("the coefficients overflow")
+            if not _finite_fit(fit):
+                raise ArithmeticError("the fit's numbers overflow")
         except (ArithmeticError, np.linalg.LinAlgError):
             # Numbers no double arithmetic can fit (1e300, 5e-324): said, never raised.
             fit, rse, mandel, limits = None, None, None, None
@@ -304,6 +304,15 @@ def _rse(points: Sequence[StandardPoint], fit: Fit, criteria: AnalyteCriteria) -
     )
 
 
+def _finite_fit(fit: Fit) -> bool:
+    """Whether every figure of the fit is a number: a standard of 1e200 leaves the
+    coefficients finite but its sums of squares (residual SD, r², covariance) overflow."""
+    figures = [*fit.coefficients, fit.residual_sd, fit.r_squared]
+    if fit.covariance is not None:
+        figures.extend(value for row in fit.covariance for value in row)
+    return all(value is None or math.isfinite(value) for value in figures)
+
+
 def _beyond_arithmetic(standards: Sequence[Reading], y: Sequence[float]) -> str:
     """Why a calibration of extreme numbers has no fit, naming its most extreme value.
 
@@ -325,9 +334,9 @@ def _beyond_arithmetic(standards: Sequence[Reading], y: Sequence[float]) -> str:
     _, reading, what, value = max(candidates, key=lambda c: c[0])
     shown = "blank-corrected response out of range" if not math.isfinite(value) else f"{value:g}"
     return (
-        f"the calibration cannot be fitted: its numbers are beyond what the arithmetic "
-        f"holds; the most extreme is {reading.sample_id} (line {reading.line}, seq "
-        f"{reading.seq}) {what} {shown}"
+        "its calibration cannot be fitted because its numbers are beyond what "
+        f"double-precision arithmetic holds; the most extreme is {reading.sample_id} "
+        f"(line {reading.line}, seq {reading.seq}), {what} {shown}"
     )
 
 

@@ -37,6 +37,7 @@ from calwarden.rules.model import Kind, Reading, Run
 __all__ = [
     "ALLOWED_KINDS",
     "KIND_WORDS",
+    "MAX_SEQ",
     "NATIVE_FIELDS",
     "NUMBER_FIELDS",
     "OPTIONAL_FIELDS",
@@ -68,6 +69,10 @@ OPTIONAL_FIELDS: tuple[str, ...] = (
 NATIVE_FIELDS: tuple[str, ...] = REQUIRED_FIELDS + OPTIONAL_FIELDS
 #: Native fields whose cells are decimal numbers (``seq`` is a whole one).
 NUMBER_FIELDS = frozenset({"response", "nominal", "istd_response", "dilution", "added"})
+
+#: The largest seq: every JSON reader holds it exactly (a double's whole numbers end at
+#: 2^53 - 1) and so does the ledger's 64-bit INTEGER (a larger one stopped the daemon).
+MAX_SEQ = 2**53 - 1
 
 #: The native kind words (lower case) and the kinds they name.
 KIND_WORDS: dict[str, Kind] = {kind.value: kind for kind in Kind}
@@ -130,6 +135,10 @@ def _seq(text: str, line: int) -> int:
         raise InputError(f"seq must be a plain whole number, got '{excerpt(text)}'", line, "seq")
     if value < 0:
         raise InputError(f"seq must not be negative, got {value}", line, "seq")
+    if value > MAX_SEQ:
+        raise InputError(
+            f"seq must be at most {MAX_SEQ} (2^53 - 1), got '{excerpt(text)}'", line, "seq"
+        )
     return value
 
 
@@ -238,7 +247,7 @@ def normalise(
         except (ValueError, KeyError):
             _check_cells(cells, line)
             raise InputError("the row cannot be read", line) from None  # pragma: no cover
-        if v_seq < 0 or "_" in numbers or not numbers.isascii():
+        if v_seq < 0 or v_seq > MAX_SEQ or "_" in numbers or not numbers.isascii():
             _check_cells(cells, line)
         try:
             reading = Reading(

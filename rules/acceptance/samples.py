@@ -164,7 +164,8 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
     Why: below the lowest standard the relative uncertainty grows fast; such
     results are reported as estimated ("J" in US EPA data qualifiers) or as
     below the limit, not as a number (common practice). A warning: the run
-    does not fail. Judged like ``range.over``.
+    does not fail. Judged like ``range.over``. A CCB or method blank under the
+    bottom of an upward quadratic has no concentration either: an info finding.
 
     Warns: S-03 Pb at 0.21 µg/L with a lowest standard of 0.5 µg/L. Passes:
     S-03 Pb at 2.4 µg/L.
@@ -196,6 +197,21 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
                 reading,
                 f"{reading.sample_id} {context.analyte} response {number(result.signal or 0.0)} "
                 "is under the bottom of the curve: below the lowest standard "
+                f"({number(low)}{context.unit}), no concentration given",
+                value=result.signal,
+                limit=(low, None),
+                flag=Flag.BELOW_RANGE,
+            )
+        elif below:
+            # A blank (CCB, method blank) reading under the bottom is clean, but must not be
+            # left without a concentration and without a word (it once passed silently).
+            yield reading_finding(
+                "range.under",
+                Severity.INFO,
+                context,
+                reading,
+                f"{reading.sample_id} {context.analyte} response {number(result.signal or 0.0)} "
+                "is under the bottom of the curve: the blank reads below the lowest standard "
                 f"({number(low)}{context.unit}), no concentration given",
                 value=result.signal,
                 limit=(low, None),
