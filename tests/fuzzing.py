@@ -188,7 +188,41 @@ def long_cell(rng: random.Random, data: bytes) -> bytes:
     return _cell(rng, data, b"x" * rng.choice([300, 5000, 200_000]))
 
 
+def scale_number(rng: random.Random, data: bytes) -> bytes:
+    """A numeric cell multiplied by a random factor: a valid file with a wrong value."""
+    lines = _lines(data)
+    spots = [
+        (i, j)
+        for i in range(1, len(lines))
+        for j, cell in enumerate(lines[i].split(b","))
+        if cell[:1].isdigit() and b"." in cell
+    ]
+    if not spots:
+        return data
+    i, j = rng.choice(spots)
+    cells = lines[i].split(b",")
+    factor = 10 ** rng.uniform(-6, 6) if rng.random() < 0.3 else rng.uniform(0.5, 1.5)
+    cells[j] = f"{float(cells[j]) * factor:.6g}".encode()
+    lines[i] = b",".join(cells)
+    return _join(lines)
+
+
+def drop_kind(rng: random.Random, data: bytes) -> bytes:
+    """Every row of one kind left out (a run missing its CCVs, blanks or standards)."""
+    lines = _lines(data)
+    kinds = sorted({line.split(b",")[2] for line in lines[1:] if line.count(b",") > 3})
+    if not kinds:
+        return data
+    gone = rng.choice(kinds)
+    return _join(
+        [lines[0], *(x for x in lines[1:] if x.count(b",") <= 3 or x.split(b",")[2] != gone)]
+    )
+
+
 MUTATORS: tuple[Mutator, ...] = (
+    scale_number,
+    scale_number,
+    drop_kind,
     flip_byte,
     insert_byte,
     delete_span,
