@@ -24,6 +24,7 @@ import gc
 import io
 import json
 import random
+import re
 import signal
 import threading
 from collections.abc import Callable, Iterator, Sequence
@@ -35,8 +36,18 @@ from verdict_invariants import LEGITIMATE_GAP_FLAGS, problems
 
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
-#: The native runs mutated (small ones first: most cases start from a short run).
-SEEDS = ("bwl-addition.csv", "bwl-metals-pass.csv", "bwl-lc-istd.csv", "bwl-quadratic.csv")
+#: The runs mutated (small ones first: most cases start from a short run), each with the
+#: configuration that reads it (None: the native format): native files and three exports.
+SEEDS: dict[str, str | None] = {
+    "bwl-addition.csv": None,
+    "bwl-metals-pass.csv": None,
+    "bwl-lc-istd.csv": None,
+    "bwl-quadratic.csv": None,
+    "exports/bwl-oes-cations.tsv": "config/export-oes-tab.yaml",
+    "exports/bwl-lcms-herbicides.csv": "config/export-lcms-wide.yaml",
+    "exports/bwl-icpms-metals-fail.xlsx": "config/export-icpms-xlsx.yaml",
+}
+SEED_WEIGHTS = (6, 2, 1, 1, 1, 1, 1)
 EXIT_OF_STATUS = {"pass": 0, "fail": 1, "error": 2}
 #: Numbers a careless or hostile file may hold in one cell.
 EXTREMES = (
@@ -58,6 +69,14 @@ def seed_bytes() -> dict[str, bytes]:
     return {name: (FIXTURES / name).read_bytes() for name in SEEDS}
 
 
+def seed_configs() -> dict[str, Any]:
+    """Each seed's configuration, loaded once."""
+    from calwarden.daemon.settings.config import load_config
+
+    loaded = {path: load_config(PROJECT / path if path else None) for path in set(SEEDS.values())}
+    return {name: loaded[path] for name, path in SEEDS.items()}
+
+
 # --------------------------------------------------------------------------- mutators
 
 Mutator = Callable[[random.Random, bytes], bytes]
@@ -71,6 +90,11 @@ def _join(lines: Sequence[bytes]) -> bytes:
     return b"\n".join(lines)
 
 
+def _delimiter(data: bytes) -> bytes:
+    first = data.split(b"\n", 1)[0]
+    return b"\t" if b"\t" in first else b","
+
+
 def _cell(rng: random.Random, data: bytes, value: bytes) -> bytes:
     """Replace one cell of one data row (not the header) with ``value``."""
     lines = _lines(data)
@@ -78,9 +102,10 @@ def _cell(rng: random.Random, data: bytes, value: bytes) -> bytes:
     if not rows:
         return data + value
     i = rng.choice(rows)
-    cells = lines[i].split(b",")
+    delimiter = _delimiter(data)
+    cells = lines[i].split(delimiter)
     cells[rng.randrange(len(cells))] = value
-    lines[i] = b",".join(cells)
+    lines[i] = delimiter.join(cells)
     return _join(lines)
 
 
@@ -136,21 +161,21 @@ def junk_cell(rng: random.Random, data: bytes) -> bytes:
 
 def kind_cell(rng: random.Random, data: bytes) -> bytes:
     """Another kind word in a row's kind column (the third one in every seed)."""
-    lines = _lines(data)
-    rows = [i for i in range(1, len(lines)) if lines[i].count(b",") > 3]
+    lines, d = _lines(data), _delimiter(data)
+    rows = [i for i in range(1, len(lines)) if lines[i].count(d) > 3]
     if not rows:
         return data
     i = rng.choice(rows)
-    cells = lines[i].split(b",")
+    cells = lines[i].split(d)
     cells[2] = rng.choice(KIND_WORDS).encode()
-    lines[i] = b",".join(cells)
+    lines[i] = d.join(cells)
     return _join(lines)
 
 
 def header_edit(rng: random.Random, data: bytes) -> bytes:
     """Drop, repeat, swap or misspell one header name."""
-    lines = _lines(data)
-    names = lines[0].split(b",")
+    lines, d = _lines(data), _delimiter(data)
+    names = lines[0].split(d)
     i = rng.randrange(len(names))
     choice = rng.randrange(4)
     if choice == 0:
@@ -162,7 +187,7 @@ def header_edit(rng: random.Random, data: bytes) -> bytes:
         names[i], names[j] = names[j], names[i]
     else:
         names[i] = names[i][:-1] + b"x"
-    lines[0] = b",".join(names)
+    lines[0] = d.join(names)
     return _join(lines)
 
 
@@ -190,33 +215,31 @@ def long_cell(rng: random.Random, data: bytes) -> bytes:
 
 def scale_number(rng: random.Random, data: bytes) -> bytes:
     """A numeric cell multiplied by a random factor: a valid file with a wrong value."""
-    lines = _lines(data)
+    lines, d = _lines(data), _delimiter(data)
     spots = [
         (i, j)
         for i in range(1, len(lines))
-        for j, cell in enumerate(lines[i].split(b","))
-        if cell[:1].isdigit() and b"." in cell
+        for j, cell in enumerate(lines[i].split(d))
+        if re.fullmatch(rb"\d+\.\d+", cell)
     ]
     if not spots:
         return data
     i, j = rng.choice(spots)
-    cells = lines[i].split(b",")
+    cells = lines[i].split(d)
     factor = 10 ** rng.uniform(-6, 6) if rng.random() < 0.3 else rng.uniform(0.5, 1.5)
     cells[j] = f"{float(cells[j]) * factor:.6g}".encode()
-    lines[i] = b",".join(cells)
+    lines[i] = d.join(cells)
     return _join(lines)
 
 
 def drop_kind(rng: random.Random, data: bytes) -> bytes:
     """Every row of one kind left out (a run missing its CCVs, blanks or standards)."""
-    lines = _lines(data)
-    kinds = sorted({line.split(b",")[2] for line in lines[1:] if line.count(b",") > 3})
+    lines, d = _lines(data), _delimiter(data)
+    kinds = sorted({line.split(d)[2] for line in lines[1:] if line.count(d) > 3})
     if not kinds:
         return data
     gone = rng.choice(kinds)
-    return _join(
-        [lines[0], *(x for x in lines[1:] if x.count(b",") <= 3 or x.split(b",")[2] != gone)]
-    )
+    return _join([lines[0], *(x for x in lines[1:] if x.count(d) <= 3 or x.split(d)[2] != gone)])
 
 
 MUTATORS: tuple[Mutator, ...] = (
@@ -256,7 +279,7 @@ def make_case(number: int, seeds: dict[str, bytes], seed: int = 0) -> FuzzCase:
     """Case ``number`` of the run ``seed``: always the same bytes."""
     rng = random.Random(f"{seed}:{number}")
     # Short runs most often, so that a case stays quick; the others keep their variety.
-    name = rng.choices(SEEDS, weights=(6, 2, 1, 1))[0]
+    name = rng.choices(list(SEEDS), weights=SEED_WEIGHTS)[0]
     data = seeds[name]
     applied = []
     for _ in range(rng.choice((1, 1, 2, 3))):
@@ -396,13 +419,17 @@ def outcome_problems(outcome: Outcome) -> tuple[dict[str, Any] | None, list[str]
     return document, [*found, *document_problems(document, outcome.exit_code)]
 
 
-def judge_in_memory(case: FuzzCase, config: Any) -> tuple[str, list[str]]:
-    """One case through the pipeline and the report in memory: its status and problems."""
+def judge_in_memory(case: FuzzCase, configs: dict[str, Any]) -> tuple[str, list[str]]:
+    """One case through the pipeline and the report in memory: its status and problems.
+
+    ``configs`` is :func:`seed_configs`: the configuration that reads the case's seed.
+    """
     from calwarden.daemon.outputs.report import render
     from calwarden.daemon.outputs.verdict_json import dump_verdict
     from calwarden.daemon.pipeline import judge_file
 
-    path = Path(f"fuzz-{case.number}.csv")
+    config = configs[case.seed_name]
+    path = Path(f"fuzz-{case.number}{Path(case.seed_name).suffix}")
     try:
         judgement = judge_file(path, config, data=case.data)
         text = dump_verdict(judgement.document)
@@ -416,6 +443,6 @@ def judge_in_memory(case: FuzzCase, config: Any) -> tuple[str, list[str]]:
     except ValueError as error:
         return "crash", [f"the verdict is not valid JSON: {error}"]
     found = document_problems(document)
-    if judgement.run is not None:
+    if judgement.run is not None and SEEDS[case.seed_name] is None:
         found.extend(rows_problems(case.data, len(judgement.run.readings)))
     return document["status"], found

@@ -13,6 +13,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from fuzzing import SEEDS as SEED_CONFIGS
 from fuzzing import (
     check_in_process,
     deadline,
@@ -20,6 +21,7 @@ from fuzzing import (
     make_case,
     outcome_problems,
     seed_bytes,
+    seed_configs,
     strict_json,
 )
 
@@ -40,13 +42,13 @@ def test_a_case_number_always_gives_the_same_bytes() -> None:
 @pytest.mark.parametrize("first", range(0, IN_MEMORY, BATCH), ids=lambda n: f"cases-{n}")
 def test_mutated_files_keep_the_invariants_in_memory(first: int) -> None:
     """Each mutated file is judged (reader, evaluation, JSON, report) keeping every invariant."""
-    config = load_config(None)
+    configs = seed_configs()
     broken = {}
     statuses = set()
     for number in range(first, first + BATCH):
         case = make_case(number, SEEDS)
         with deadline(10.0):
-            status, problems = judge_in_memory(case, config)
+            status, problems = judge_in_memory(case, configs)
         statuses.add(status)
         if problems:
             broken[number] = (case.seed_name, case.mutations, problems)
@@ -59,9 +61,12 @@ def test_mutated_files_through_check_json_keep_the_invariants(tmp_path: Path) ->
     broken = {}
     for number in range(1000, 1030):
         case = make_case(number, SEEDS)
-        path = tmp_path / f"case-{number}.csv"
+        path = tmp_path / f"case-{number}{Path(case.seed_name).suffix}"
         path.write_bytes(case.data)
-        outcome = check_in_process(path, "--out", str(tmp_path / "out"), seconds=10.0)
+        options = ["--out", str(tmp_path / "out")]
+        if SEED_CONFIGS[case.seed_name]:
+            options += ["--config", str(PROJECT / str(SEED_CONFIGS[case.seed_name]))]
+        outcome = check_in_process(path, *options, seconds=10.0)
         _, problems = outcome_problems(outcome)
         if problems:
             broken[number] = (case.mutations, problems)
@@ -72,10 +77,13 @@ def test_mutated_files_through_real_processes_keep_the_invariants(tmp_path: Path
     """Three mutated files through real `calwarden check --json` processes, with a timeout."""
     env = dict(os.environ, PYTHONPATH=str(PROJECT))
     for number in range(2000, 2003):
-        path = tmp_path / f"case-{number}.csv"
-        path.write_bytes(make_case(number, SEEDS).data)
+        case = make_case(number, SEEDS)
+        path = tmp_path / f"case-{number}{Path(case.seed_name).suffix}"
+        path.write_bytes(case.data)
+        config = SEED_CONFIGS[case.seed_name]
+        options = ["--config", str(PROJECT / config)] if config else []
         done = subprocess.run(
-            [sys.executable, "-m", "calwarden.daemon", "check", str(path), "--json"],
+            [sys.executable, "-m", "calwarden.daemon", "check", str(path), "--json", *options],
             capture_output=True,
             text=True,
             encoding="utf-8",

@@ -2,7 +2,8 @@
 
     python tests/benchmarks/fuzz.py --cases 10000 [--seed 0] [--show 10]
 
-Each case is a native fixture with one to three mutations (``tests/fuzzing.py``:
+Each case is a fixture (native runs, and three exports with their configurations)
+with one to three mutations (``tests/fuzzing.py``:
 flipped and inserted bytes, cut files, repeated and swapped lines, extreme and junk
 cells, other kinds, broken headers, line ends, byte-order marks, other encodings,
 long cells), judged in memory exactly as ``calwarden check`` judges a file (reader,
@@ -27,9 +28,14 @@ from pathlib import Path
 PROJECT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(PROJECT / "tests"))
 
-from fuzzing import Hang, deadline, judge_in_memory, make_case, seed_bytes  # noqa: E402
-
-from calwarden.daemon.settings.config import load_config  # noqa: E402
+from fuzzing import (  # noqa: E402
+    Hang,
+    deadline,
+    judge_in_memory,
+    make_case,
+    seed_bytes,
+    seed_configs,
+)
 
 
 def floor_seconds(cases: list[bytes]) -> float:
@@ -52,7 +58,7 @@ def main() -> int:
     parser.add_argument("--show", type=int, default=10, help="broken cases to print")
     args = parser.parse_args()
     warnings.simplefilter("error")  # a numeric warning is an invariant broken, as in the suite
-    config = load_config(None)
+    configs = seed_configs()
     seeds = seed_bytes()
     outcomes: Counter[str] = Counter()
     broken: list[tuple[int, str, tuple[str, ...], list[str]]] = []
@@ -64,7 +70,7 @@ def main() -> int:
         start = time.perf_counter()
         try:
             with deadline(10.0):
-                status, problems = judge_in_memory(case, config)
+                status, problems = judge_in_memory(case, configs)
         except Hang as error:
             status, problems = "hang", [str(error)]
         judging += time.perf_counter() - start
