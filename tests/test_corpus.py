@@ -120,3 +120,52 @@ def test_corpus_class(entry: dict[str, Any], corpus_files: Path, tmp_path: Path)
         if "flagged" in entry:
             flagged = next(out.glob("*.flagged.csv")).read_text(encoding="utf-8-sig")
             assert entry["flagged"] in flagged
+
+
+def test_the_native_corpus_through_one_watcher_never_stops_it(
+    corpus_files: Path, tmp_path: Path
+) -> None:
+    """Every native corpus file dropped into one running watcher: each judged, no fault.
+
+    `check` has no ledger: a seq beyond 2^63 in a CCV passed there but stopped the daemon
+    (exit 3, on every restart) when its control point reached the ledger.
+    """
+    from waiting import wait_for
+
+    from calwarden.daemon.intake.accept import Outcome
+    from calwarden.daemon.intake.watcher import Watcher
+    from calwarden.daemon.settings.config import build_config, plan_watch
+
+    inbox, out = tmp_path / "inbox", tmp_path / "out"
+    inbox.mkdir()
+    expected: dict[str, str] = {}
+    for entry in INDEX:
+        if "file" not in entry or "config" in entry or not entry["file"].endswith(".csv"):
+            continue
+        name = Path(entry["file"]).name
+        if name.startswith("."):
+            continue  # the watcher ignores hidden names by design
+        (inbox / name).write_bytes((corpus_files / entry["file"]).read_bytes())
+        expected[name] = entry["status"]
+    config = build_config({"control": {"charts": False}}, "corpus")
+    outcomes: list[Outcome] = []
+    plan = plan_watch(config, inbox=inbox, out=out, settle_seconds=0.05)
+    watcher = Watcher(plan, on_outcome=outcomes.append)
+    watcher.start()
+    try:
+        wait_for(
+            lambda: len(outcomes) >= len(expected) or watcher.fault is not None,
+            120.0,
+            f"{len(expected)} corpus files judged",
+        )
+    finally:
+        watcher.stop()
+        assert watcher.wait(10), "the worker did not end"
+    assert watcher.fault is None
+    wrong = {
+        o.path: (o.status, expected[o.path])
+        for o in outcomes
+        if o.status not in (expected[o.path], "duplicate")  # the same bytes under two names
+    }
+    assert wrong == {}
+    assert {o.path for o in outcomes} == set(expected)

@@ -267,7 +267,7 @@ case("seq_exponent", with_cell(S1, "seq", "9e0"), 2, message="whole number")
 case("seq_with_underscore", with_cell(S1, "seq", "1_9"), 2, message="plain whole number")
 case("seq_2_53_minus_1_is_accepted", with_cell(CCV, "seq", str(2**53 - 1)), 0)
 case("seq_2_53_stopped_the_daemon", with_cell(CCV, "seq", str(2**53)), 2, message="2^53")
-case("seq_2_64", with_cell(S1, "seq", str(2**64)), 2, message="2^53")
+case("seq_2_64_on_a_ccv", with_cell(CCV, "seq", str(2**64)), 2, message="2^53")
 case("seq_of_4300_digits", with_cell(S1, "seq", "9" * 4300), 2, message="seq")
 case("duplicate_seq_and_analyte", with_cell(S2, "seq", "9"), 2, message="line 11")
 case(
@@ -491,6 +491,23 @@ case(
     1,
     rule="calibration.present",
 )
+
+# --------------------------------------------------------------------------- careless exports
+case("header_repeated_mid_file", add_rows(HEADER), 2, message="line 12")
+case("two_runs_pasted_together", base() + base(), 2, message="line 13")
+case("spreadsheet_sep_line_first", "sep=,\n" + base(), 2, message="line 1")
+case("a_title_line_before_the_header", "Run export\n" + base(), 2)
+case("totals_row_at_the_end", base() + ",,,Total,98214,,,\n", 2, message="line 13")
+case("excel_error_value_in_a_response", with_cell(S1, "response", "#VALUE!"), 2, message="line 10")
+case("excel_date_in_a_nominal", with_cell(CAL1, "nominal", "01.01.2026"), 2, message="line 3")
+case("percent_sign_in_a_response", with_cell(S1, "response", "31%"), 2, message="line 10")
+case("nbsp_inside_a_number", with_cell(S1, "response", "3\u00a0100"), 2, message="line 10")
+case("ccv_nominal_missing", with_cell(CCV, "nominal", ""), 2, message="nominal")
+case("icv_missing_entirely", text([r for i, r in enumerate(BASE_ROWS) if i != ICV]), 1)
+case("closing_ccv_missing", text(BASE_ROWS[:CCV]), 1, rule="bracket.closing")
+case("ccv_recovering_80_percent", with_cell(CCV, "response", "16100"), 1, rule="check.recovery")
+case("sample_above_the_top_standard", with_cell(S1, "response", "90100"), 1, rule="range.over")
+case("a_standard_reading_twice_its_nominal", with_cell(CAL6 - 1, "response", "40100"), 1)
 
 # --------------------------------------------------------------------------- not regular files
 case("a_directory", None, 2, special="directory", message="directory")
