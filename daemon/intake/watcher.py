@@ -71,7 +71,12 @@ from calwarden.daemon.intake.settling import (
     wanted,
 )
 from calwarden.daemon.outputs.files import is_leftover_temporary
-from calwarden.daemon.outputs.pictures import CHARTS_FOLDER, draw_calibration, draw_series
+from calwarden.daemon.outputs.pictures import (
+    CHARTS_FOLDER,
+    ChartCriteria,
+    draw_calibration,
+    draw_series,
+)
 from calwarden.daemon.outputs.verdict_json import calwarden_version
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
@@ -79,6 +84,7 @@ from calwarden.daemon.settings.config import Inbox, WatchPlan
 from calwarden.daemon.stores.database import LEDGER_NAME, LedgerError
 from calwarden.daemon.stores.ledger import Ledger
 from calwarden.daemon.stores.records import SeriesKey
+from calwarden.rules.criteria import Criteria
 
 log = structlog.get_logger("calwarden")
 
@@ -170,6 +176,11 @@ class Watcher:
         self._pictures_pending = True  # checked in the ledger at start
         self._drawing: _RunPictures | None = None
         self.sender: AlertSender | None = None
+        # The charts' acceptance windows: the criteria of the inbox bound to an instrument.
+        self._chart_criteria = ChartCriteria.of(
+            plan.inboxes[0].config.criteria if plan.inboxes else Criteria(),
+            [(inbox.instrument, inbox.config.criteria) for inbox in plan.inboxes],
+        )
 
     # ------------------------------------------------------------------ life cycle
 
@@ -197,7 +208,12 @@ class Watcher:
         self._ledger = ledger
         self._intake = Intake(ledger, self.plan.inboxes, self.plan.alerts)
         if self.plan.alerts.enabled:
-            self.sender = AlertSender(self.plan.state_dir, self.plan.alerts, self.plan.control)
+            self.sender = AlertSender(
+                self.plan.state_dir,
+                self.plan.alerts,
+                self.plan.control,
+                criteria=self._chart_criteria,
+            )
             self.sender.start()
         log.info(
             "daemon_started",
@@ -528,7 +544,11 @@ class Watcher:
                 key = next(iter(self._stale_charts))
                 try:
                     draw_series(
-                        self._ledger.control, control, self.plan.out / CHARTS_FOLDER, (key,)
+                        self._ledger.control,
+                        control,
+                        self.plan.out / CHARTS_FOLDER,
+                        (key,),
+                        self._chart_criteria,
                     )
                 finally:
                     self._stale_charts.pop(key, None)  # after drawing: wait_pictures sees it
