@@ -53,6 +53,7 @@ from calwarden.daemon.alerts.sender import AlertSender, daemon_trouble, emergenc
 from calwarden.daemon.intake import settling
 from calwarden.daemon.intake.accept import Intake, Outcome, OutputError
 from calwarden.daemon.intake.lock import StateLock
+from calwarden.daemon.intake.notify import Notifier
 from calwarden.daemon.intake.settling import (
     GiveUp,
     Judge,
@@ -176,6 +177,7 @@ class Watcher:
         self._pictures_pending = True  # checked in the ledger at start
         self._drawing: _RunPictures | None = None
         self.sender: AlertSender | None = None
+        self.notifier = Notifier()  # systemd's Type=notify; does nothing without one
         # The charts' acceptance windows: the criteria of the inbox bound to an instrument.
         self._chart_criteria = ChartCriteria.of(
             plan.inboxes[0].config.criteria if plan.inboxes else Criteria(),
@@ -227,9 +229,11 @@ class Watcher:
         )
         self._thread = threading.Thread(target=self._run, name="calwarden-worker", daemon=True)
         self._thread.start()
+        self.notifier.ready()
 
     def stop(self, timeout: float = 10.0) -> None:
         """Finish (or safely abandon) the file in hand, close the ledger, stop every thread."""
+        self.notifier.stopping()
         self._stop.set()
         self._hints.put(None)  # wake the worker
         if self._thread is not None:
@@ -273,6 +277,7 @@ class Watcher:
             next_rescan = now + self.settings.rescan_seconds
             next_check = now + self.settings.observer_check_seconds
             while not self._stop.is_set():
+                self.notifier.watchdog()  # the loop turns at least once a second (_MAX_WAIT)
                 now = time.monotonic()
                 wake = min(next_rescan, next_check, self._due[0].when if self._due else now + 60)
                 if not self._due and self._hints.empty():
