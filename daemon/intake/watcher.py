@@ -210,12 +210,8 @@ class Watcher:
         self._ledger = ledger
         self._intake = Intake(ledger, self.plan.inboxes, self.plan.alerts)
         if self.plan.alerts.enabled:
-            self.sender = AlertSender(
-                self.plan.state_dir,
-                self.plan.alerts,
-                self.plan.control,
-                criteria=self._chart_criteria,
-            )
+            self.sender = AlertSender(self.plan.state_dir, self.plan.alerts, self.plan.control)
+            self.sender.criteria = self._chart_criteria  # its charts' acceptance windows
             self.sender.start()
         log.info(
             "daemon_started",
