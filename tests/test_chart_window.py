@@ -158,3 +158,22 @@ def test_chart_command_draws_with_the_configured_window_and_either_axis(
     assert default.startswith(b"\x89PNG\r\n\x1a\n")
     assert len({default, configured, timed}) == 3
     assert "1 chart(s)" in capsys.readouterr().out
+
+
+def test_the_daemon_hands_its_criteria_to_the_alert_charts(tmp_path: Path) -> None:
+    """A watcher's alert sender draws its inline charts with the inbox's acceptance window."""
+    from calwarden.daemon.intake.watcher import Watcher
+
+    (tmp_path / "inbox").mkdir()
+    config = build_config({"criteria": {"defaults": {"ccv_recovery_pct": [85, 115]}}}, "test")
+    plan = plan_watch(config, inbox=tmp_path / "inbox", out=tmp_path / "out", settle_seconds=0.1)
+    with capture_logs():
+        watcher = Watcher(plan)
+        watcher.start()
+        try:
+            assert watcher.sender is not None and watcher.sender.criteria is not None
+            chosen = watcher.sender.criteria.for_series(ZN_CCV)
+            assert chosen.ccv_recovery_pct == (85.0, 115.0)
+        finally:
+            watcher.stop()
+            assert watcher.wait(10.0)
