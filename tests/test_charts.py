@@ -19,6 +19,7 @@ from matplotlib.figure import Figure
 from matplotlib.text import Text
 
 from calwarden.daemon.outputs.drawing import (
+    AcceptanceWindow,
     ChartPoint,
     ControlChart,
     calibration_figure,
@@ -278,8 +279,8 @@ def test_a_far_outlier_is_drawn_at_the_edge_with_its_value() -> None:
 
 
 def test_points_without_times_are_placed_by_their_order() -> None:
-    """Points with no acquisition time sit at 1, 2, 3 … on a "point number" axis."""
-    figure = control_chart_figure(_chart(30, points=_points(30, timed=False)))
+    """On a time axis, points with no acquisition time sit at 1, 2, 3 … by "point number"."""
+    figure = control_chart_figure(_chart(30, points=_points(30, timed=False), axis="time"))
     ax = figure.axes[0]
     (series,) = [line for line in ax.get_lines() if line.get_gid() == "series"]
     assert list(series.get_xdata()) == [float(n) for n in range(1, 31)]
@@ -303,6 +304,90 @@ def test_a_chart_refuses_a_centre_without_an_sd() -> None:
     """The centre and the SD come together or not at all."""
     with pytest.raises(ValueError, match="both the centre and the SD"):
         _chart(centre=100.0, sd=None)
+
+
+def _two_per_run(runs: int) -> tuple[ChartPoint, ...]:
+    """Invented CCV-1 and CCV-2 recoveries of ``runs`` runs, one run a day, two days apart at 5."""
+    points = []
+    for run in range(runs):
+        day = START + timedelta(days=run + (2 if run >= 5 else 0))
+        for j in range(2):
+            value = 100.0 + ((run * 7 + j * 3) % 9 - 4) * 0.5
+            points.append(ChartPoint(day + timedelta(hours=3 * j), value, f"RUN-{run:02d}"))
+    return tuple(points)
+
+
+CCV_WINDOW = AcceptanceWindow(90.0, 110.0, "CCV recovery 90–110 %", "90 % = 22.5 µg/L",
+                              "110 % = 27.5 µg/L")  # fmt: skip
+
+
+def test_without_limits_the_acceptance_window_is_drawn_and_named() -> None:
+    """No baseline yet: the run's 90–110 % window is a band with its concentrations and a legend."""
+    figure = control_chart_figure(_chart(7, centre=None, sd=None, window=CCV_WINDOW))
+    ax = figure.axes[0]
+    assert [p.get_gid() for p in ax.patches] == ["window"]
+    texts = _texts(figure)
+    assert "90 % = 22.5 µg/L" in texts and "110 % = 27.5 µg/L" in texts
+    (legend,) = figure.legends
+    assert "acceptance window of each run (CCV recovery 90–110 %); no baseline yet" in [
+        t.get_text() for t in legend.get_texts()
+    ]
+    low, high = ax.get_ylim()
+    assert low < 90.0 and high > 110.0
+
+
+def test_limits_once_set_replace_the_acceptance_window() -> None:
+    """With a centre and an SD the window is not drawn: the control limits are."""
+    figure = control_chart_figure(_chart(window=CCV_WINDOW))
+    assert not figure.axes[0].patches
+    assert "no baseline yet" not in _texts(figure)
+
+
+def test_run_axis_gives_each_run_one_evenly_spaced_slot() -> None:
+    """Two points per run share its slot; a two-day gap leaves no wider space on a run axis."""
+    chart = _chart(points=_two_per_run(10), centre=None, sd=None, axis="run")
+    ax = control_chart_figure(chart).axes[0]
+    (series,) = [line for line in ax.get_lines() if line.get_gid() == "series"]
+    xs = list(series.get_xdata())
+    assert xs[:4] == [0.75, 1.25, 1.75, 2.25]
+    slots = [0.5 * (xs[i] + xs[i + 1]) for i in range(0, len(xs), 2)]
+    assert slots == [float(n) for n in range(1, 11)]
+    assert ax.get_xlabel().startswith("runs in order, evenly spaced")
+
+
+def test_run_axis_names_a_few_runs_with_their_dates() -> None:
+    """Thirty runs: at most eight ticks named, the first and the last run among them."""
+    chart = _chart(points=_two_per_run(30), centre=None, sd=None, axis="run")
+    ax = control_chart_figure(chart).axes[0]
+    labels = [t.get_text() for t in ax.get_xticklabels()]
+    assert 2 <= len(labels) <= 8
+    assert labels[0] == "RUN-00\n2026-10-01"
+    assert labels[-1].startswith("RUN-29\n")
+
+
+def test_time_axis_keeps_the_gaps() -> None:
+    """axis="time": the two-day gap is wider than a day between runs."""
+    chart = _chart(points=_two_per_run(10), centre=None, sd=None, axis="time")
+    ax = control_chart_figure(chart).axes[0]
+    (series,) = [line for line in ax.get_lines() if line.get_gid() == "series"]
+    xs = list(series.get_xdata())
+    assert xs[10] - xs[8] == pytest.approx(3.0)  # days, matplotlib's date unit
+    assert xs[8] - xs[6] == pytest.approx(1.0)
+
+
+@pytest.mark.parametrize("axis", ["run", "time"])
+def test_both_axes_render_to_a_1000_by_600_png(axis: str) -> None:
+    """Run and time axes, with a window, both give a PNG decoding to 1000 × 600 through Agg."""
+    chart = _chart(points=_two_per_run(12), centre=None, sd=None, axis=axis, window=CCV_WINDOW)
+    png = control_chart_png(chart)
+    assert png.startswith(PNG_SIGNATURE)
+    assert _decoded_shape(png)[:2] == (600, 1000)
+
+
+def test_a_chart_refuses_an_unknown_axis() -> None:
+    """An axis other than run or time is refused when the chart is built."""
+    with pytest.raises(ValueError, match="unknown axis"):
+        _chart(axis="sideways")
 
 
 # --- calibrations -----------------------------------------------------------------------

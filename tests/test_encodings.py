@@ -89,3 +89,13 @@ def test_implausible_counts_symbols_strung_together_not_lone_units() -> None:
 def test_utf32_reads_when_configured() -> None:
     """A codec that is not ASCII-compatible (UTF-32) is checked for binary on its text."""
     assert decode(HEADER.encode("utf-32"), "utf-32").text == HEADER
+
+
+def test_the_native_utf8_refusal_says_which_key_reads_the_file() -> None:
+    """Windows-1252 bytes in a native file: the message names format: {encoding: cp1252}."""
+    with pytest.raises(InputError) as caught:
+        decode(WESTERN.encode("cp1252"))
+    assert "not valid UTF-8" in caught.value.reason
+    assert "format: {encoding: cp1252}" in caught.value.reason
+    # The key the message names reads the same bytes as written.
+    assert decode(WESTERN.encode("cp1252"), "cp1252").text == WESTERN

@@ -31,7 +31,7 @@ from email.parser import BytesParser
 from email.policy import SMTP
 from email.utils import getaddresses
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import structlog
 
@@ -52,6 +52,9 @@ from calwarden.daemon.stores.control import ControlHistory
 from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
 from calwarden.daemon.stores.outbox import Delivery, Outbox, StoredAlert
 from calwarden.daemon.stores.records import NewAlert, SeriesKey, timestamp
+
+if TYPE_CHECKING:
+    from calwarden.daemon.outputs.pictures import ChartCriteria
 
 log = structlog.get_logger("calwarden")
 
@@ -97,11 +100,13 @@ class AlertSender:
         settings: AlertSettings,
         control: ControlSettings | None = None,
         *,
+        criteria: ChartCriteria | None = None,
         clock: Callable[[], float] = time.time,
     ) -> None:
         self.state_dir = state_dir
         self.settings = settings
         self.control = control
+        self.criteria = criteria  # the runs' acceptance window, on a chart without limits
         self.outbox_dir = state_dir / OUTBOX_FOLDER
         self.dead_letter_dir = state_dir / DEAD_LETTER_FOLDER
         self._clock = clock
@@ -302,7 +307,8 @@ class AlertSender:
                 str(entry.get("level") or ""),
             )
             try:
-                png = control_chart_png(build_chart(self._control_log, self.control, key))
+                chart = build_chart(self._control_log, self.control, key, self.criteria)
+                png = control_chart_png(chart)
             except Exception as error:  # a picture is a courtesy; the alert goes without it
                 log.warning("alert_chart_failed", alert=alert.id, error=repr(error))
                 continue

@@ -140,6 +140,12 @@ def _parser() -> argparse.ArgumentParser:
         description="Without an action: draw the chosen control charts as PNG files in "
         "<out>/charts/ and say where they are.",
     )
+    chart.add_argument(
+        "--axis",
+        choices=("run", "time"),
+        help="x axis of the drawn charts: run order, evenly spaced, or acquisition time "
+        "(default: control.chart_axis, run)",
+    )
     chart_commands = chart.add_subparsers(dest="chart_command", metavar="ACTION")
     chart_commands.add_parser(
         "export",
@@ -533,11 +539,21 @@ def _chart(args: argparse.Namespace) -> int:
                 print(f"unchanged: {reason}")
             print(f"{len(limits)} series given new limits, set {now}; earlier limits kept")
             return EXIT_PASS
-        from calwarden.daemon.outputs.pictures import draw_charts
+        from calwarden.daemon.outputs.pictures import ChartCriteria, draw_charts
 
+        criteria = ChartCriteria.of(
+            config.criteria, [(inbox.instrument, inbox.criteria) for inbox in config.inboxes]
+        )
         database = Database(ledger_path, read_only=True)
         try:
-            written = draw_charts(ControlHistory(database), config.control, out / "charts", chosen)
+            written = draw_charts(
+                ControlHistory(database),
+                config.control,
+                out / "charts",
+                chosen,
+                criteria,
+                axis=args.axis,
+            )
         finally:
             database.close()
         for path in written:

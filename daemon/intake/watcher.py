@@ -53,6 +53,7 @@ from calwarden.daemon.alerts.sender import AlertSender, daemon_trouble, emergenc
 from calwarden.daemon.intake import settling
 from calwarden.daemon.intake.accept import Intake, Outcome, OutputError
 from calwarden.daemon.intake.lock import StateLock
+from calwarden.daemon.intake.notify import Notifier
 from calwarden.daemon.intake.settling import (
     GiveUp,
     Judge,
@@ -71,7 +72,12 @@ from calwarden.daemon.intake.settling import (
     wanted,
 )
 from calwarden.daemon.outputs.files import is_leftover_temporary
-from calwarden.daemon.outputs.pictures import CHARTS_FOLDER, draw_calibration, draw_series
+from calwarden.daemon.outputs.pictures import (
+    CHARTS_FOLDER,
+    ChartCriteria,
+    draw_calibration,
+    draw_series,
+)
 from calwarden.daemon.outputs.verdict_json import calwarden_version
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
@@ -79,6 +85,7 @@ from calwarden.daemon.settings.config import Inbox, WatchPlan
 from calwarden.daemon.stores.database import LEDGER_NAME, LedgerError
 from calwarden.daemon.stores.ledger import Ledger
 from calwarden.daemon.stores.records import SeriesKey
+from calwarden.rules.criteria import Criteria
 
 log = structlog.get_logger("calwarden")
 
@@ -170,6 +177,12 @@ class Watcher:
         self._pictures_pending = True  # checked in the ledger at start
         self._drawing: _RunPictures | None = None
         self.sender: AlertSender | None = None
+        self.notifier = Notifier()  # systemd's Type=notify; does nothing without one
+        # The charts' acceptance windows: the criteria of the inbox bound to an instrument.
+        self._chart_criteria = ChartCriteria.of(
+            plan.inboxes[0].config.criteria if plan.inboxes else Criteria(),
+            [(inbox.instrument, inbox.config.criteria) for inbox in plan.inboxes],
+        )
 
     # ------------------------------------------------------------------ life cycle
 
@@ -198,6 +211,7 @@ class Watcher:
         self._intake = Intake(ledger, self.plan.inboxes, self.plan.alerts)
         if self.plan.alerts.enabled:
             self.sender = AlertSender(self.plan.state_dir, self.plan.alerts, self.plan.control)
+            self.sender.criteria = self._chart_criteria  # its charts' acceptance windows
             self.sender.start()
         log.info(
             "daemon_started",
@@ -211,9 +225,11 @@ class Watcher:
         )
         self._thread = threading.Thread(target=self._run, name="calwarden-worker", daemon=True)
         self._thread.start()
+        self.notifier.ready()
 
     def stop(self, timeout: float = 10.0) -> None:
         """Finish (or safely abandon) the file in hand, close the ledger, stop every thread."""
+        self.notifier.stopping()
         self._stop.set()
         self._hints.put(None)  # wake the worker
         if self._thread is not None:
@@ -257,6 +273,7 @@ class Watcher:
             next_rescan = now + self.settings.rescan_seconds
             next_check = now + self.settings.observer_check_seconds
             while not self._stop.is_set():
+                self.notifier.watchdog()  # the loop turns at least once a second (_MAX_WAIT)
                 now = time.monotonic()
                 wake = min(next_rescan, next_check, self._due[0].when if self._due else now + 60)
                 if not self._due and self._hints.empty():
@@ -528,7 +545,11 @@ class Watcher:
                 key = next(iter(self._stale_charts))
                 try:
                     draw_series(
-                        self._ledger.control, control, self.plan.out / CHARTS_FOLDER, (key,)
+                        self._ledger.control,
+                        control,
+                        self.plan.out / CHARTS_FOLDER,
+                        (key,),
+                        self._chart_criteria,
                     )
                 finally:
                     self._stale_charts.pop(key, None)  # after drawing: wait_pictures sees it

@@ -23,6 +23,14 @@ Choices made here (ours, not from a standard):
   an autoscaled axis would make 0.5 % of noise look like a trend.
 - Only the latest few violations carry their rule ids on the chart; the subtitle
   says how many more there are.
+- Before a series has control limits, the runs' own acceptance window (a CCV's
+  recovery limits, say) is drawn as a light band between dash-dot lines, and the
+  legend says it is the acceptance window and that there is no baseline yet: the
+  window judges each run on its own, it is not a control limit.
+- By default the x axis is the run order (``axis="run"``): one evenly spaced slot
+  per run, the points of one run side by side in it, a few slots labelled with
+  the run's name and date. Overnight and weekend gaps would otherwise leave most
+  of a time axis empty. ``axis="time"`` places points at their acquisition times.
 - The residual panel of a calibration shows ±15 % (the default
   ``back_calculation_pct`` of :mod:`rules.criteria`) as guide lines labelled as
   guides: a verdict does not record which limit its run used.
@@ -48,15 +56,18 @@ from calwarden.rules.control import BASELINE_SIZE
 DRAWING = threading.Lock()
 
 if TYPE_CHECKING:
+    from matplotlib.artist import Artist
     from matplotlib.axes import Axes
     from matplotlib.figure import Figure
 
 __all__ = [
+    "AXES",
     "BASELINE",
     "IN_CONTROL",
     "REJECTION",
     "STATUSES",
     "WARNING",
+    "AcceptanceWindow",
     "ChartPoint",
     "ControlChart",
     "calibration_figure",
@@ -71,6 +82,8 @@ REJECTION = "rejection"
 BASELINE = "baseline"  # a point the limits were computed from
 #: Every status a :class:`ChartPoint` may have, in the legend's order.
 STATUSES = (BASELINE, IN_CONTROL, WARNING, REJECTION)
+#: The x axes a control chart may have: run order (evenly spaced) or acquisition time.
+AXES = ("run", "time")
 
 DPI = 100
 CONTROL_SIZE_INCHES = (10.0, 6.0)  # 1000 × 600 px
@@ -85,6 +98,10 @@ _ROOM_SD = 1.0
 #: Without limits the y axis spans at least the mean ± this fraction of it.
 _UNLIMITED_HALF_SPAN = 0.05
 _RESIDUAL_HEIGHT_PT = 130.0
+#: At most this many runs are named under a run axis (the rest are ticks without text).
+_RUN_LABELS = 7
+#: The points of one run share this much of its slot on a run axis.
+_RUN_SPREAD = 0.5
 
 # Colours: dark enough on white, apart in hue and in lightness (greyscale).
 _INK = "#222222"
@@ -93,6 +110,7 @@ _LINE = "#9aa3aa"
 _BLUE = "#1f5f99"
 _AMBER = "#b77800"
 _RED = "#c0341d"
+_WINDOW_FILL = "#e9f0f6"
 
 _TITLE_PT = 13.0
 _SUBTITLE_PT = 10.0
@@ -142,6 +160,26 @@ class ChartPoint:
 
 
 @dataclass(frozen=True, slots=True)
+class AcceptanceWindow:
+    """The runs' own acceptance limits in the chart's unit (a CCV's 90–110 % recovery).
+
+    Drawn only while a chart has no control limits. ``what`` names the window in
+    the legend ("CCV recovery 90–110 %"); ``low_label`` and ``high_label`` are the
+    texts at the right edge ("110 % = 27.5 µg/L").
+    """
+
+    low: float
+    high: float
+    what: str
+    low_label: str = ""
+    high_label: str = ""
+
+    def __post_init__(self) -> None:
+        if not (math.isfinite(self.low) and math.isfinite(self.high) and self.low < self.high):
+            raise ValueError(f"a window needs finite low < high, got {self.low}, {self.high}")
+
+
+@dataclass(frozen=True, slots=True)
 class ControlChart:
     """What a control chart shows: a series of points and, once set, its limits.
 
@@ -149,8 +187,11 @@ class ControlChart:
     yet: fewer points than a baseline needs, ``baseline_size``). ``limits_note``
     says where the limits come from ("limits from the first 20 points, set
     2026-12-01"), or why there are none. Only the last ``last_n`` points are
-    drawn. When any point shown has no time, every point is placed by its
-    position in the series instead (1 for the first point of ``points``).
+    drawn. ``axis`` is ``"run"`` (one evenly spaced slot per run, in the order of
+    ``points``) or ``"time"`` (acquisition times; when any point shown has no
+    time, every point is placed by its position in the series instead, 1 for the
+    first point of ``points``). ``window``, the runs' own acceptance limits, is
+    drawn while there are no control limits.
     """
 
     title: str
@@ -161,8 +202,12 @@ class ControlChart:
     limits_note: str = ""
     last_n: int = 60
     baseline_size: int = BASELINE_SIZE
+    axis: str = "run"
+    window: AcceptanceWindow | None = None
 
     def __post_init__(self) -> None:
+        if self.axis not in AXES:
+            raise ValueError(f"unknown axis {self.axis!r}; one of {', '.join(AXES)}")
         if (self.centre is None) != (self.sd is None):
             raise ValueError("give both the centre and the SD, or neither")
         if self.centre is not None and not math.isfinite(self.centre):
@@ -254,13 +299,19 @@ def control_chart_figure(chart: ControlChart) -> Figure:
     """The control chart as a matplotlib figure on an Agg canvas (for tests, other formats)."""
     from matplotlib import dates as mdates
     from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
     from matplotlib.ticker import FuncFormatter, MaxNLocator
 
     total = len(chart.points)
     first = max(0, total - chart.last_n)
     shown = chart.points[first:]
     timed = bool(shown) and all(p.when is not None for p in shown)
-    if timed:
+    by_run = chart.axis == "run" and bool(shown)
+    by_time = chart.axis == "time" and timed
+    slots: list[tuple[str, datetime | None]] = []  # a run axis: each slot's run and time
+    if by_run:
+        xs, slots = _run_positions(shown)
+    elif by_time:
         # matplotlib.dates carries no type annotations, hence the ignores.
         xs = [float(mdates.date2num(p.when)) for p in shown]  # type: ignore[no-untyped-call]
     else:
@@ -272,6 +323,7 @@ def control_chart_figure(chart: ControlChart) -> Figure:
     _style_axes(ax)
 
     centre, sd = chart.centre, chart.sd
+    window = chart.window if centre is None else None  # limits, once set, replace it
     low, high = _control_span(values, centre, sd)
     # A point off the axis is drawn on its edge (and labelled with its value).
     drawn = [min(max(v, low), high) for v in values]
@@ -293,6 +345,12 @@ def control_chart_figure(chart: ControlChart) -> Figure:
                 label = f"{mark}{k}s {y:.{decimals}f}"
                 _edge_label(ax, y, label, _MUTED if k == 1 else colour)
         ax.set_ylim(low, high)
+    elif window is not None:
+        ax.axhspan(window.low, window.high, color=_WINDOW_FILL, zorder=0, gid="window")
+        for y, text in ((window.low, window.low_label), (window.high, window.high_label)):
+            ax.axhline(y, color=_MUTED, linestyle="-.", linewidth=1.0, zorder=1)
+            _edge_label(ax, y, text or f"{y:g}", _MUTED)
+        ax.set_ylim(*_unlimited_span([*values, window.low, window.high]))
     elif values:
         ax.set_ylim(*_unlimited_span(values))
 
@@ -317,7 +375,9 @@ def control_chart_figure(chart: ControlChart) -> Figure:
     labels, unlabelled = _violation_labels(shown, values, off_scale, _decimals(sd or 0.0))
 
     # Axes: dates readable, values without offsets or scientific notation.
-    if timed:
+    if by_run:
+        _run_axis(ax, slots)
+    elif by_time:
         tz = shown[0].when.tzinfo if shown[0].when is not None else None
         locator = mdates.AutoDateLocator(tz=tz, minticks=4, maxticks=9)  # type: ignore[no-untyped-call]
         concise = mdates.ConciseDateFormatter(locator, tz=tz)  # type: ignore[no-untyped-call]
@@ -334,8 +394,10 @@ def control_chart_figure(chart: ControlChart) -> Figure:
             )
         else:
             ax.set_xlabel("point number in the series", fontsize=_LABEL_PT, color=_INK)
-    if xs and max(xs) == min(xs):
-        pad = 0.5 if timed else 1.0  # one point, or all at one time: half a day either side
+    if by_run:
+        ax.set_xlim(0.4, len(slots) + 0.6)
+    elif xs and max(xs) == min(xs):
+        pad = 0.5 if by_time else 1.0  # one point, or all at one time: half a day either side
         ax.set_xlim(xs[0] - pad, xs[0] + pad)
     else:
         ax.margins(x=0.03)
@@ -354,7 +416,7 @@ def control_chart_figure(chart: ControlChart) -> Figure:
         )
 
     # Legend: only the statuses present, one row beneath the plot.
-    handles = [
+    handles: list[Artist] = [
         Line2D(
             [],
             [],
@@ -367,6 +429,15 @@ def control_chart_figure(chart: ControlChart) -> Figure:
         )
         for s in present
     ]
+    if window is not None:
+        handles.append(
+            Patch(
+                facecolor=_WINDOW_FILL,
+                edgecolor=_MUTED,
+                linestyle="-.",
+                label=f"acceptance window of each run ({window.what}); no baseline yet",
+            )
+        )
     if handles:
         figure.legend(
             handles=handles,
@@ -403,6 +474,71 @@ def _unlimited_span(values: Sequence[float]) -> tuple[float, float]:
     high = max(max(values), mean + _UNLIMITED_HALF_SPAN * abs(mean))
     pad = 0.08 * (high - low) or 1.0
     return (low - pad, high + pad)
+
+
+def _run_positions(
+    shown: Sequence[ChartPoint],
+) -> tuple[list[float], list[tuple[str, datetime | None]]]:
+    """Each point's x on a run axis, and each slot's run and first time.
+
+    A run is one slot (1, 2, 3 … in the order given); consecutive points of one
+    run share it, side by side within ``_RUN_SPREAD``. The same run name coming
+    back later (a re-judged file) is a new slot: the axis follows the points.
+    """
+    groups: list[list[int]] = []
+    for i, point in enumerate(shown):
+        if groups and shown[groups[-1][0]].run == point.run:
+            groups[-1].append(i)
+        else:
+            groups.append([i])
+    xs = [0.0] * len(shown)
+    slots: list[tuple[str, datetime | None]] = []
+    for slot, members in enumerate(groups, start=1):
+        step = _RUN_SPREAD / (len(members) - 1) if len(members) > 1 else 0.0
+        for j, index in enumerate(members):
+            xs[index] = slot + (j - (len(members) - 1) / 2) * step
+        first = shown[members[0]]
+        slots.append((first.run, first.when))
+    return xs, slots
+
+
+def _short(text: str, width: int = 18) -> str:
+    """A run name that fits under a tick: its start and end, an ellipsis between."""
+    if len(text) <= width:
+        return text
+    keep = width - 1
+    return f"{text[: keep - keep // 2]}…{text[len(text) - keep // 2 :]}"
+
+
+def _run_axis(ax: Axes, slots: Sequence[tuple[str, datetime | None]]) -> None:
+    """A tick per run, a few of them named (run name, date), the last always."""
+    from matplotlib.ticker import FixedLocator, NullFormatter
+
+    count = len(slots)
+    step = max(1, math.ceil(count / _RUN_LABELS))
+    named = list(range(1, count + 1, step))
+    if named[-1] != count:
+        if len(named) > 1 and count - named[-1] < step / 2:
+            named[-1] = count  # the last run's name would run into its neighbour's
+        else:
+            named.append(count)
+    ax.xaxis.set_major_locator(FixedLocator([float(n) for n in named]))
+    ax.xaxis.set_minor_locator(FixedLocator([float(n) for n in range(1, count + 1)]))
+    ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.set_xticklabels(
+        [
+            _short(slots[n - 1][0])
+            + (f"\n{when:%Y-%m-%d}" if (when := slots[n - 1][1]) is not None else "")
+            for n in named
+        ],
+        fontsize=_SMALL_PT,
+    )
+    ax.set_xlabel(
+        f"runs in order, evenly spaced whatever the time between them ({count} run"
+        f"{'s' if count != 1 else ''})",
+        fontsize=_LABEL_PT,
+        color=_INK,
+    )
 
 
 def _control_subtitle(

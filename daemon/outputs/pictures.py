@@ -9,7 +9,8 @@ is drawn.
 from __future__ import annotations
 
 import re
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -25,13 +26,81 @@ from calwarden.daemon.settings.control import ControlSettings
 from calwarden.daemon.stores.control import ControlHistory
 from calwarden.daemon.stores.records import SeriesKey, StoredLimits
 from calwarden.rules.control import ControlPoint, ControlSeries, LimitSource, evaluate_group
+from calwarden.rules.criteria import AnalyteCriteria, Criteria
 
 if TYPE_CHECKING:
-    from calwarden.daemon.outputs.drawing import ControlChart
+    from calwarden.daemon.outputs.drawing import AcceptanceWindow, ControlChart
 
 CHARTS_FOLDER = "charts"
 _HISTORY = 1000  # points read for one chart (it draws the last chart_points of them)
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
+_LEVEL = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(.*?)\s*$")
+#: Each series kind's own acceptance window in the criteria, and how a legend names it.
+_WINDOWS = {
+    "ICV": ("icv_recovery_pct", "ICV recovery"),
+    "CCV": ("ccv_recovery_pct", "CCV recovery"),
+    "LCS": ("lcs_recovery_pct", "LCS recovery"),
+    "ISTD": ("istd_recovery_pct", "internal-standard recovery"),
+}
+
+
+@dataclass(frozen=True, slots=True)
+class ChartCriteria:
+    """The acceptance criteria the runs of a series are judged by, found by instrument.
+
+    ``by_instrument`` holds the criteria of inboxes bound to one instrument;
+    every other series takes ``default`` (the configuration's criteria).
+    """
+
+    default: Criteria
+    by_instrument: tuple[tuple[str, Criteria], ...] = ()
+
+    def for_series(self, key: SeriesKey) -> AnalyteCriteria:
+        chosen = next((c for name, c in self.by_instrument if name == key.instrument), None)
+        return (chosen or self.default).for_analyte(key.analyte)
+
+    @classmethod
+    def of(
+        cls, default: Criteria, inboxes: Sequence[tuple[str | None, Criteria | None]]
+    ) -> ChartCriteria:
+        """From the configuration's criteria and each inbox's (instrument, criteria)."""
+        return cls(
+            default,
+            tuple((name, c) for name, c in inboxes if name is not None and c is not None),
+        )
+
+
+def _quantity(value: float) -> str:
+    return f"{value:.4g}"
+
+
+def acceptance_window(criteria: AnalyteCriteria, key: SeriesKey) -> AcceptanceWindow | None:
+    """The series kind's own recovery window (a CCV's 90–110 %); None for slopes.
+
+    For a check standard whose level names its nominal ("25 µg/L"), the edge
+    labels give the window as concentrations too ("110 % = 27.5 µg/L").
+    """
+    from calwarden.daemon.outputs.drawing import AcceptanceWindow
+
+    known = _WINDOWS.get(key.kind)
+    if known is None:
+        return None
+    field, what = known
+    low, high = getattr(criteria, field)
+    nominal, unit = None, ""
+    level = _LEVEL.match(key.level) if key.kind != "ISTD" else None
+    if level is not None:
+        nominal, unit = float(level.group(1)), level.group(2)
+
+    def label(percent: float) -> str:
+        text = f"{percent:g} %"
+        if nominal is None:
+            return text
+        return f"{text} = {_quantity(nominal * percent / 100.0)}" + (f" {unit}" if unit else "")
+
+    return AcceptanceWindow(
+        float(low), float(high), f"{what} {low:g}–{high:g} %", label(low), label(high)
+    )
 
 
 def safe_name(text: str) -> str:
@@ -77,8 +146,19 @@ def _limits_note(stored: StoredLimits | None, fixed: bool) -> str:
     return f"limits from {stored.n} baseline points{runs}, set {stored.set_at[:10]}"
 
 
-def build_chart(ledger: ControlHistory, settings: ControlSettings, key: SeriesKey) -> ControlChart:
-    """The :class:`~drawing.ControlChart` of one series, as the ledger has it now."""
+def build_chart(
+    ledger: ControlHistory,
+    settings: ControlSettings,
+    key: SeriesKey,
+    criteria: ChartCriteria | None = None,
+    *,
+    axis: str | None = None,
+) -> ControlChart:
+    """The :class:`~drawing.ControlChart` of one series, as the ledger has it now.
+
+    ``criteria``: the runs' acceptance criteria, whose window the chart shows until
+    the series has limits. ``axis`` overrides ``settings.chart_axis``.
+    """
     from calwarden.daemon.outputs.drawing import (
         BASELINE,
         IN_CONTROL,
@@ -152,11 +232,21 @@ def build_chart(ledger: ControlHistory, settings: ControlSettings, key: SeriesKe
         ),
         last_n=settings.chart_points,
         baseline_size=settings.baseline_points,
+        axis=axis or settings.chart_axis,
+        window=None
+        if criteria is None or limits is not None
+        else acceptance_window(criteria.for_series(key), key),
     )
 
 
 def draw_series(
-    ledger: ControlHistory, settings: ControlSettings, charts_dir: Path, keys: Iterable[SeriesKey]
+    ledger: ControlHistory,
+    settings: ControlSettings,
+    charts_dir: Path,
+    keys: Iterable[SeriesKey],
+    criteria: ChartCriteria | None = None,
+    *,
+    axis: str | None = None,
 ) -> list[Path]:
     """Draw the given series' charts; returns the files written."""
     from calwarden.daemon.outputs.drawing import control_chart_png
@@ -165,17 +255,24 @@ def draw_series(
     for key in keys:
         path = chart_path(charts_dir, key)
         path.parent.mkdir(parents=True, exist_ok=True)
-        atomic_write(path, control_chart_png(build_chart(ledger, settings, key)))
+        chart = build_chart(ledger, settings, key, criteria, axis=axis)
+        atomic_write(path, control_chart_png(chart))
         written.append(path)
     return written
 
 
 def draw_charts(
-    ledger: ControlHistory, settings: ControlSettings, charts_dir: Path, chosen: SeriesFilter
+    ledger: ControlHistory,
+    settings: ControlSettings,
+    charts_dir: Path,
+    chosen: SeriesFilter,
+    criteria: ChartCriteria | None = None,
+    *,
+    axis: str | None = None,
 ) -> list[Path]:
     """Draw every chosen series of the log (``calwarden chart``)."""
     keys = [key for key in ledger.series_keys() if chosen.matches(key)]
-    return draw_series(ledger, settings, charts_dir, keys)
+    return draw_series(ledger, settings, charts_dir, keys, criteria, axis=axis)
 
 
 def draw_calibration(document: VerdictDocument, out_folder: Path, stem: str, analyte: str) -> Path:

@@ -133,7 +133,9 @@ def _native(data: bytes) -> Text:
         bad = data[exc.start : exc.start + 1].hex()
         raise InputError(
             f"the file is not valid UTF-8 text: byte 0x{bad} cannot be decoded "
-            f"(was it saved as Latin-1 or Windows-1252? save it as UTF-8)",
+            "(was it saved as Latin-1 or Windows-1252? save it as UTF-8, or name its "
+            "encoding in the configuration's format section, key encoding, e.g. "
+            "format: {encoding: cp1252}, or encoding: auto to try UTF-8, then Windows-1252)",
             _line_at(data, exc.start, "utf-8"),
         ) from None
 
@@ -299,7 +301,11 @@ def _check_binary(data: bytes, *, configured: bool) -> None:
     if data.startswith(_UTF32_MARKS):
         raise InputError(_UTF32_REFUSED, 1)
     if data.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
-        reason, offset = "the file is UTF-16 text, which reads as binary here; save it as UTF-8", 0
+        reason, offset = (
+            "the file is UTF-16 text, which reads as binary here; save it as UTF-8, or set "
+            "format: {encoding: utf-16} in the configuration",
+            0,
+        )
     elif nul >= 0:
         reason, offset = "the file looks binary, not text: it holds a NUL byte", nul
     else:

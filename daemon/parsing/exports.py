@@ -79,6 +79,7 @@ from calwarden.daemon.parsing.table import (
     RawTable,
     Record,
     check_header,
+    closest_column,
     header_key,
     is_blank,
     physical_lines,
@@ -390,9 +391,11 @@ def _find_column(ref: ColumnRef, purpose: str, names: Sequence[str], header_line
         hits = [i for i, name in enumerate(names) if header_key(name) == header_key(ref)]
         wanted = f"column '{ref.strip()}'"
     if not hits:
+        hint = closest_column(ref, names) if isinstance(ref, str) else None
+        meant = f" (did you mean '{hint}'?)" if hint is not None else ""
         raise InputError(
-            f"the format expects {wanted} (for {purpose}); the header on line {header_line} "
-            f"has: {', '.join(names)}",
+            f"the format expects {wanted} (for {purpose}){meant}; the header on line "
+            f"{header_line} has: {', '.join(names)}",
             header_line,
             ref.strip() if isinstance(ref, str) else None,
         )
@@ -447,10 +450,12 @@ def _resolve(names: Sequence[str], header_line: int, fmt: ExportFormat) -> _Colu
                 "seq": " (or order: rows to number injections in file order)",
                 "kind": " (or kinds.patterns or kinds.default to tell kinds from sample ids)",
             }.get(field, "")
+            close = closest_column(field, (n for i, n in enumerate(names) if i not in claimed))
+            meant = f" (did you mean columns.{field}: {close}?)" if close else ""
             raise InputError(
                 f"no column for {field}: the header has no column '{field}' and the format "
-                f"maps none (set columns.{field}{hint}); the header on line {header_line} has: "
-                f"{', '.join(names)}",
+                f"maps none (set columns.{field}{hint}){meant}; the header on line "
+                f"{header_line} has: {', '.join(names)}",
                 header_line,
                 field,
             )
@@ -833,12 +838,16 @@ def export_table(
     source: str = "<data>",
     suffix: str = ".csv",
     max_bytes: int = MAX_FILE_BYTES,
+    collect: list[InputError] | None = None,
 ) -> tuple[RawTable, Detected]:
     """Read an export's bytes as ``fmt`` describes into a native :class:`RawTable`.
 
     ``suffix`` is the file's extension, for ``file_type: auto``. Rows keep the
     export's line numbers (XLSX: sheet rows); a wide row gives one row per
-    measured analyte, all on its line. Every problem raises InputError.
+    measured analyte, all on its line. Every problem raises InputError; with
+    ``collect`` (``calwarden inspect``), a row's own problem (an unknown kind
+    code, a bad number) is appended there and the row left out, so that every
+    such row is listed at once.
     """
     check_bytes(data, max_bytes)  # a workbook too
     if _is_xlsx(data, fmt, suffix):
@@ -876,9 +885,16 @@ def export_table(
         if matched is not None:
             skipped.append((start, f"matches skip_matching '{matched}'"))
             continue
-        if len(fields) != width:
-            fields = _fit(fields, width, start, is_xlsx)
-        for cells in converter.convert(start, fields):
+        try:
+            if len(fields) != width:
+                fields = _fit(fields, width, start, is_xlsx)
+            converted = converter.convert(start, fields)
+        except InputError as error:
+            if collect is None:
+                raise
+            collect.append(error)
+            continue
+        for cells in converted:
             append(RawRow(start, tuple(map(str, cells)) if is_xlsx else cells))
 
     detected = Detected(

@@ -30,7 +30,7 @@ from operator import itemgetter
 from pathlib import Path
 
 from calwarden.daemon.parsing.decode import MAX_FILE_BYTES, decode, excerpt, read_file_bytes
-from calwarden.daemon.parsing.table import RawTable, header_key, split_table
+from calwarden.daemon.parsing.table import RawTable, closest_column, header_key, split_table
 from calwarden.rules.errors import ConfigError, InputError
 from calwarden.rules.model import Kind, Reading, Run
 
@@ -186,6 +186,13 @@ def _resolve_columns(table: RawTable, mapping: Mapping[str, str] | None) -> dict
             f"'{wanted[f]}'" if wanted[f] == f else f"'{wanted[f]}' (for {f})" for f in missing
         )
         plural = "s" if len(missing) > 1 else ""
+        taken = {table.header[i].strip() for i in found.values()}
+        hints = [
+            f"'{excerpt(hint)}' for {wanted[f]}"
+            for f in missing
+            if (hint := closest_column(wanted[f], table.header)) is not None and hint not in taken
+        ]
+        meant = f" (did you mean {', '.join(hints)}?)" if hints else ""
         header = ", ".join(name.strip() for name in table.header)
         if any(field in found for field in NATIVE_FIELDS):
             shown = f"the header has: {excerpt(header, 200)}"
@@ -193,7 +200,7 @@ def _resolve_columns(table: RawTable, mapping: Mapping[str, str] | None) -> dict
             # Perhaps not a run at all (a link to a system file): quote only its start.
             shown = f"the first row begins '{excerpt(header, 12)}'; is the header row missing?"
         raise InputError(
-            f"required column{plural} {names} missing; {shown}",
+            f"required column{plural} {names} missing{meant}; {shown}",
             table.header_line,
             missing[0],
         )

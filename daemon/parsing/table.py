@@ -15,7 +15,9 @@ its format, then uses the same splitter.
 from __future__ import annotations
 
 import csv
+import difflib
 import io
+import re
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 
@@ -27,6 +29,7 @@ __all__ = [
     "RawTable",
     "Record",
     "check_header",
+    "closest_column",
     "header_key",
     "is_blank",
     "physical_lines",
@@ -61,6 +64,33 @@ Record = tuple[int, int, Sequence[str]]
 def header_key(name: str) -> str:
     """The form header names are matched in: surrounding spaces stripped, case folded."""
     return name.strip().casefold()
+
+
+_NOT_WORD = re.compile(r"[\W_]+")
+
+
+def _bare(name: str) -> str:
+    """A header name without case, spaces or punctuation: "Sample ID" → "sampleid"."""
+    return _NOT_WORD.sub("", header_key(name))
+
+
+def closest_column(wanted: str, names: Iterable[str]) -> str | None:
+    """The header name ``wanted`` probably means, for a did-you-mean hint; None if none is close.
+
+    Equal but for case, spaces and punctuation ("Pos" for "Pos.", "sample_id" for
+    "Sample ID") wins; otherwise the most similar name at a ratio of 0.8 or more
+    (difflib's, on the bare forms), so that a hint is rarely wrong.
+    """
+    shown = [name.strip() for name in names if name.strip()]
+    bare = _bare(wanted)
+    if not bare:
+        return None
+    same = next((name for name in shown if _bare(name) == bare), None)
+    if same is not None:
+        return same
+    forms = {_bare(name): name for name in reversed(shown) if _bare(name)}
+    close = difflib.get_close_matches(bare, list(forms), n=1, cutoff=0.8)
+    return forms[close[0]] if close else None
 
 
 def is_blank(cells: Iterable[str]) -> bool:

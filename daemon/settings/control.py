@@ -141,6 +141,11 @@ class ControlSettings(Section):
     chart_points: int = Field(
         default=60, ge=5, le=1000, description="points drawn on each control chart"
     )
+    chart_axis: Literal["run", "time"] = Field(
+        default="run",
+        description="the x axis of a control chart: run (each run one evenly spaced slot, "
+        "so nights and weekends leave no empty stretches) or time (acquisition times)",
+    )
     charts: bool = Field(default=True, description="draw the charts as PNG after each run")
 
     @field_validator("rules", "rejecting")
