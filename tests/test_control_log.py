@@ -384,6 +384,29 @@ def test_no_limits_before_baseline_runs(lab: Callable[..., Lab]) -> None:
     assert limits.n == 6 and limits.runs == 3  # whole runs: 2 + 2 + 2
 
 
+def test_runs_sharing_a_name_read_the_series_for_a_baseline_once_per_new_run(
+    lab: Callable[..., Lab], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Files of one run name do not re-read a series too few runs keep without limits."""
+    one = lab({"baseline_points": 2, "baseline_runs": 3})
+    searches: list[SeriesKey] = []
+    read = one.ledger.control.series_points
+
+    def counted(key: SeriesKey, **kwargs: Any) -> list[Any]:
+        if kwargs.get("first") is not None:
+            searches.append(key)
+        return read(key, **kwargs)
+
+    monkeypatch.setattr(one.ledger.control, "series_points", counted)
+    rng = np.random.default_rng(7)
+    names = ["METHOD-A"] * 5 + ["METHOD-B"] * 3 + ["METHOD-C"]
+    for i, name in enumerate(names):
+        one.judge(f"f-{i}.csv", metals_run(name, zn_ccv(*(1.0 + rng.normal(0, 0.004, 2)))))
+    assert searches.count(ZN_CCV) == 3  # the first file of each run name
+    limits = one.ledger.control.active_limits(ZN_CCV)
+    assert limits is not None and limits.runs == 3 and limits.n == 18
+
+
 def test_baseline_is_the_one_way_decomposition_of_its_points(lab: Callable[..., Lab]) -> None:
     """The limits set are the one-way ANOVA (numpy) of exactly the first runs' points."""
     one = lab({"baseline_points": 4, "baseline_runs": 4})

@@ -2,21 +2,20 @@
 
 Exit codes: 0 pass, 1 fail, 2 error (the file could not be evaluated, or the
 configuration is invalid). Heavy modules are imported inside the commands so
-that ``calwarden --help`` and a cold ``check`` start quickly.
+that ``calwarden --help`` and a cold ``check`` start quickly, and ``calwarden
+--version`` alone imports nothing of calwarden's but this module
+(``tests/benchmarks/bench_startup.py`` measures both).
 """
 
 from __future__ import annotations
 
 import argparse
 import gc
-import inspect
-import json
 import re
 import sys
 from collections.abc import Sequence
-from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, NamedTuple
 
 if TYPE_CHECKING:
     from calwarden.daemon.settings.config import AppConfig
@@ -176,8 +175,6 @@ def _check(args: argparse.Namespace) -> int:
     # One short-lived process building many small acyclic objects: the cycle collector
     # would only rescan them over and over (about a tenth of a large run's time).
     gc.disable()
-    from calwarden.daemon.outputs.files import fitting_stem, write_outputs
-    from calwarden.daemon.outputs.report import render
     from calwarden.daemon.outputs.verdict_json import dump_verdict
     from calwarden.daemon.pipeline import judge_file
     from calwarden.daemon.settings.config import load_config
@@ -195,6 +192,8 @@ def _check(args: argparse.Namespace) -> int:
 
     document = judgement.document
     if args.out is not None:
+        from calwarden.daemon.outputs.files import fitting_stem, write_outputs
+
         try:
             write_outputs(
                 args.out, fitting_stem(args.file.stem), document, judgement.table, judgement.verdict
@@ -207,6 +206,8 @@ def _check(args: argparse.Namespace) -> int:
     if args.json:
         print(dump_verdict(document))
     else:
+        from calwarden.daemon.outputs.report import render
+
         print(render(document, full=False), end="")
         if args.out is not None:
             print(f"\nverdict, flagged copy and report written to {args.out}")
@@ -214,6 +215,8 @@ def _check(args: argparse.Namespace) -> int:
 
 
 def _check_failed(args: argparse.Namespace, message: str) -> int:
+    import json
+
     from calwarden.daemon.pipeline import error_document
 
     if args.json:
@@ -250,6 +253,8 @@ def _config(args: argparse.Namespace) -> int:
     from calwarden.daemon.settings.config import AppConfig
 
     if args.config_command == "schema":
+        import json
+
         schema = AppConfig.model_json_schema()
         schema = {"$schema": "https://json-schema.org/draft/2020-12/schema", **schema}
         schema["title"] = "calwarden configuration"
@@ -280,8 +285,7 @@ def _config(args: argparse.Namespace) -> int:
     return EXIT_PASS
 
 
-@dataclass(frozen=True, slots=True)
-class _Listed:
+class _Listed(NamedTuple):
     """One rule as `calwarden rules` shows it: acceptance rules and control-chart rules alike."""
 
     id: str
@@ -298,6 +302,8 @@ def _plain(text: str) -> str:
 
 
 def _listed_rules(config: AppConfig) -> list[_Listed]:
+    import inspect
+
     from calwarden.rules.control import WESTGARD_RULES, ewma_violations
     from calwarden.rules.registry import all_rules
 
@@ -630,16 +636,48 @@ def main(argv: Sequence[str] | None = None) -> int:
         return EXIT_ERROR
 
 
+def _installed_version() -> str:
+    """The installed distribution's version, from its metadata's ``Version`` field.
+
+    Read from the first ``calwarden-*.dist-info`` on ``sys.path``, as
+    ``importlib.metadata`` finds it, but without importing it: that alone costs
+    more than a bare interpreter's start-up (it imports the email package). It
+    stays the fallback. The verdict module would import numpy to say it.
+    """
+    import os
+
+    for entry in sys.path:
+        try:
+            names = os.listdir(entry or ".")
+        except OSError:
+            continue
+        for name in names:
+            if not (name.lower().startswith("calwarden-") and name.endswith(".dist-info")):
+                continue
+            try:
+                with open(os.path.join(entry, name, "METADATA"), encoding="utf-8") as metadata:
+                    for line in metadata:
+                        if line.startswith("Version:"):
+                            return line.removeprefix("Version:").strip()
+                        if not line.strip():
+                            break  # the end of the headers
+            except OSError:
+                pass
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("calwarden")
+    except PackageNotFoundError:
+        return "unknown"
+
+
 def _dispatch(argv: Sequence[str] | None) -> int:
+    if list(sys.argv[1:] if argv is None else argv) == ["--version"]:
+        print(f"calwarden {_installed_version()}")  # before the parser: nothing else to load
+        return EXIT_PASS
     args = _parser().parse_args(argv)
     if args.version:
-        # From the package metadata alone: the verdict module would import numpy to say it.
-        from importlib.metadata import PackageNotFoundError, version
-
-        try:
-            print(f"calwarden {version('calwarden')}")
-        except PackageNotFoundError:
-            print("calwarden unknown")
+        print(f"calwarden {_installed_version()}")
         return EXIT_PASS
     if args.command == "check":
         return _check(args)

@@ -152,6 +152,7 @@ def assess(
     *,
     replacing: tuple[str, str] = ("", ""),
     failed_baselines: dict[SeriesKey, int] | None = None,
+    few_runs: dict[SeriesKey, frozenset[str]] | None = None,
 ) -> Assessment:
     """Log-to-be points of one run, any limits they set, and the history to judge them by.
 
@@ -159,11 +160,19 @@ def assess(
     their points are not history for it. ``failed_baselines`` remembers, across
     calls, how many in-control points a series had when a baseline could not be
     set from them (all values equal, say), so that it is tried again only once
-    the series has doubled, not on every run. The findings are made from the
+    the series has doubled, not on every run. ``few_runs`` remembers the runs a
+    search found when they were too few for a baseline: the next search can only
+    succeed once a run not among them arrives (the first points of a series are
+    its window, and points only ever join it at the end), so the series is not
+    read again for each file of the same run (an instrument that writes its
+    method's name as the run). The caller forgets it when a file's new version
+    supersedes points, which changes the window. The findings are made from the
     history by ``rules.control_verdict.with_control``.
     """
     if failed_baselines is None:
         failed_baselines = {}
+    if few_runs is None:
+        few_runs = {}
     points = tuple(
         NewPoint(
             SeriesKey(instrument, o.analyte, o.kind, o.level),
@@ -192,8 +201,12 @@ def assess(
         limits, _ = series_limits(ledger, settings, key)
         size, in_control = ledger.series_size(key, excluding=replacing)
         fresh_in_control = sum(1 for _, point in fresh if point.accepted)
-        if limits is None and in_control + fresh_in_control >= max(
-            settings.baseline_points, 2 * failed_baselines.get(key, 0)
+        known_runs = few_runs.get(key, frozenset())
+        if (
+            limits is None
+            and in_control + fresh_in_control
+            >= max(settings.baseline_points, 2 * failed_baselines.get(key, 0))
+            and not (run in known_runs and len(known_runs) < settings.baseline_runs)
         ):
             earlier = ledger.series_points(
                 key, first=_BASELINE_SEARCH, excluding=replacing, accepted_only=True
@@ -206,14 +219,19 @@ def assess(
             established = baseline_for(
                 key, candidates, settings.baseline_points, settings.baseline_runs, now
             )
+            candidate_runs = frozenset(p.run for p in candidates)
             if established is not None:
                 failed_baselines.pop(key, None)
+                few_runs.pop(key, None)
                 new_limits.append(established)
                 limits = stored_to_limits(established)
-            elif len({p.run for p in candidates}) >= settings.baseline_runs:
+            elif len(candidate_runs) >= settings.baseline_runs:
                 # Enough points and runs, yet no limits (every value equal): not worth
-                # looking again on every run. (Too few runs: the next run may do.)
+                # looking again on every run.
                 failed_baselines[key] = in_control + fresh_in_control
+            else:
+                # Too few runs: only a run not among these can make a baseline.
+                few_runs[key] = candidate_runs
         size += len(fresh)
         charts.append(
             ControlChart(

@@ -138,6 +138,7 @@ class Intake:
         self.alerts = alerts if alerts is not None else AlertSettings()
         self._digests = {inbox.name: config_digest(inbox.config) for inbox in inboxes}
         self._failed_baselines: dict[SeriesKey, int] = {}
+        self._few_runs: dict[SeriesKey, frozenset[str]] = {}
 
     def process(
         self,
@@ -209,6 +210,9 @@ class Intake:
         started = time.perf_counter()
         previous = self.ledger.files.current(inbox.name, relative)
         version = 1 if previous is None else previous.version + 1
+        if previous is not None:
+            # A new version supersedes points: the series' first points may change.
+            self._few_runs.clear()
         assessed: list[Assessment] = []
 
         def refine(run: Run, verdict: Verdict) -> Verdict:
@@ -380,6 +384,7 @@ class Intake:
             timestamp(),
             replacing=(inbox.name, relative),
             failed_baselines=self._failed_baselines,
+            few_runs=self._few_runs,
         )
 
     def _judgement(

@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
+from bisect import bisect_left
+from collections.abc import Callable, Iterable, Iterator
 
 from calwarden.rules.acceptance.common import (
     number,
@@ -57,6 +58,7 @@ def result_computable(context: AnalyteContext) -> Iterator[Finding]:
     Fails: S-1 Zn with a dilution of 1e308 (reported concentration infinite).
     Passes: S-1 Zn with a dilution of 10.
     """
+    by_seq: dict[int, Reading] | None = None  # built when the first broken result needs it
     for seq, result in context.results.items():
         broken = [
             name
@@ -70,7 +72,9 @@ def result_computable(context: AnalyteContext) -> Iterator[Finding]:
         ]
         if not broken:
             continue
-        reading = next((r for r in context.readings if r.seq == seq), None)
+        if by_seq is None:
+            by_seq = {r.seq: r for r in reversed(context.readings)}  # the first of a seq
+        reading = by_seq.get(seq)
         numbers = f"dilution {result.dilution:g}"
         if reading is not None and reading.added is not None:
             numbers += f", added {reading.added:g}"
@@ -279,18 +283,58 @@ def _basis_finding(context: AnalyteContext, reading: Reading, curve_has_istd: bo
     )
 
 
-def _native(context: AnalyteContext, reading: Reading) -> tuple[Reading, Result] | None:
+class _Candidates:
+    """Readings sharing one sample id (or one parent), in run order."""
+
+    __slots__ = ("_seqs", "_sorted", "readings")
+
+    def __init__(self) -> None:
+        self.readings: list[Reading] = []
+        self._seqs: list[int] = []
+        self._sorted = True
+
+    def add(self, reading: Reading) -> None:
+        if self._seqs and reading.seq < self._seqs[-1]:
+            self._sorted = False
+        self.readings.append(reading)
+        self._seqs.append(reading.seq)
+
+    def nearest_before(self, seq: int) -> Reading:
+        """The last reading (in run order) acquired before ``seq``, else the first."""
+        if self._sorted:  # in seq order (the usual case): halve, do not scan
+            at = bisect_left(self._seqs, seq)
+            return self.readings[at - 1] if at else self.readings[0]
+        earlier = [r for r in self.readings if r.seq < seq]
+        return earlier[-1] if earlier else self.readings[0]
+
+
+def _grouped(
+    readings: Iterable[Reading], key: Callable[[Reading], str | None]
+) -> dict[str | None, _Candidates]:
+    """Readings by ``key``, built once per rule and analyte, so that finding every
+    duplicate's parent takes time linear in the rows, not their square."""
+    groups: dict[str | None, _Candidates] = {}
+    for reading in readings:
+        groups.setdefault(key(reading), _Candidates()).add(reading)
+    return groups
+
+
+def _parents(context: AnalyteContext) -> dict[str | None, _Candidates]:
+    """The analyte's samples, LCS and method blanks by sample id."""
+    return _grouped((r for r in context.readings if r.kind in _PARENT_KINDS), lambda r: r.sample_id)
+
+
+def _native(
+    context: AnalyteContext, reading: Reading, parents: dict[str | None, _Candidates]
+) -> tuple[Reading, Result] | None:
     """The parent's reading and result (the nearest one acquired before, else the first).
 
     A parent may be a sample, an LCS or a method blank (an LCS duplicate is routine).
     """
-    candidates = [
-        r for r in context.readings if r.kind in _PARENT_KINDS and r.sample_id == reading.parent
-    ]
-    if not candidates:
+    candidates = parents.get(reading.parent)
+    if candidates is None:
         return None
-    earlier = [r for r in candidates if r.seq < reading.seq]
-    chosen = earlier[-1] if earlier else candidates[0]
+    chosen = candidates.nearest_before(reading.seq)
     result = result_of(context, chosen)
     return (chosen, result) if result else None
 
@@ -323,9 +367,10 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
     criteria = context.criteria
     calibration = context.calibration
     low = calibration.range_low if calibration else None
+    parents = _parents(context)
     for reading in context.of_kind(Kind.DUP):
         duplicate = result_of(context, reading)
-        native = _native(context, reading)
+        native = _native(context, reading, parents)
         if native is None:
             yield reading_finding(
                 "duplicate.rpd",
@@ -384,9 +429,10 @@ def spike_recovery(context: AnalyteContext) -> Iterator[Finding]:
     """
     criteria = context.criteria
     limits = criteria.spike_recovery_pct
+    parents = _parents(context)
     for reading in context.of_kind(Kind.MS, Kind.MSD):
         spiked = result_of(context, reading)
-        native = _native(context, reading)
+        native = _native(context, reading, parents)
         added = reading.added or 0.0
         if native is None:
             yield _not_judged(
@@ -428,13 +474,12 @@ def spike_rpd(context: AnalyteContext) -> Iterator[Finding]:
     24.9 µg/L (RPD 3.3 %).
     """
     limit = context.criteria.spike_max_rpd_pct
-    spikes = context.of_kind(Kind.MS)
+    spikes = _grouped(context.of_kind(Kind.MS), lambda r: r.parent)
     for duplicate in context.of_kind(Kind.MSD):
-        partners = [r for r in spikes if r.parent == duplicate.parent]
-        if not partners:
+        partners = spikes.get(duplicate.parent)
+        if partners is None:
             continue  # a lone MSD is judged by spike.recovery alone
-        earlier = [r for r in partners if r.seq < duplicate.seq]
-        spike = earlier[-1] if earlier else partners[0]
+        spike = partners.nearest_before(duplicate.seq)
         first, second = result_of(context, spike), result_of(context, duplicate)
         if first is None or second is None:
             continue
