@@ -21,6 +21,7 @@ from calwarden.rules.acceptance import (
     checks,
     coverage,
     replicates,
+    reporting,
     samples,
 )
 from calwarden.rules.rule import AnalyteContext, Rule
@@ -60,6 +61,8 @@ RULES: tuple[Rule, ...] = (
     samples.spike_recovery,
     samples.spike_rpd,
     additions.addition_fit,
+    # issue 15: reporting limits and qualifiers
+    reporting.reporting_limit_rule,
     # what the run holds at all
     coverage.run_field_samples,
 )

@@ -17,6 +17,7 @@ from calwarden.rules.acceptance.common import (
     span,
     within,
 )
+from calwarden.rules.acceptance.reporting import reporting_limit
 from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
 from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Result, Severity
@@ -164,16 +165,21 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
     Why: below the lowest standard the relative uncertainty grows fast; such
     results are reported as estimated ("J" in US EPA data qualifiers) or as
     below the limit, not as a number (common practice). A warning: the run
-    does not fail. Judged like ``range.over``.
+    does not fail. Judged like ``range.over``. A result below its reporting
+    limit (``reporting.limit``) is reported as "< RL", not as an estimate, so it
+    is not warned about here.
 
     Warns: S-03 Pb at 0.21 µg/L with a lowest standard of 0.5 µg/L. Passes:
-    S-03 Pb at 2.4 µg/L.
+    S-03 Pb at 2.4 µg/L, or at 0.21 µg/L with a reporting limit of 1 µg/L.
     """
     calibration = context.calibration
     if calibration is None or calibration.range_low is None:
         return
     low = calibration.range_low
     for reading, measured in quantitated_field_results(context):
+        limit = reporting_limit(context, reading)
+        if limit is not None and measured * reading.dilution < limit:
+            continue  # reported as "< RL": reporting.limit's
         if measured < low:
             yield reading_finding(
                 "range.under",
@@ -188,6 +194,8 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
                 flag=Flag.BELOW_RANGE,
             )
     for reading, result, below in off_curve_results(context):
+        if reporting_limit(context, reading) is not None:
+            continue  # under the curve's bottom, so below the limit: reported as "< RL"
         if below and reading.kind in REPORTABLE_KINDS:
             yield reading_finding(
                 "range.under",
