@@ -41,6 +41,7 @@ RULES: tuple[Rule, ...] = (
     # check standards, control samples, blanks, internal standards
     checks.check_standard_recovery,
     checks.lcs_recovery,
+    reporting.check_low_level,  # issue 15
     coverage.run_required_qc,
     blanks.blank_contamination,
     samples.istd_recovery,
@@ -51,6 +52,7 @@ RULES: tuple[Rule, ...] = (
     brackets.bracket_blank,
     blanks.blank_method_multiple,
     checks.lcs_batch,
+    reporting.bracket_low_level,  # issue 15
     # the samples' own results
     samples.result_computable,
     replicates.replicate_rsd,
@@ -58,6 +60,7 @@ RULES: tuple[Rule, ...] = (
     samples.range_on_curve,
     samples.range_under,
     samples.duplicate_rpd,
+    reporting.duplicate_near_limit,  # issue 15
     samples.spike_recovery,
     samples.spike_rpd,
     additions.addition_fit,

@@ -306,8 +306,10 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
     6010D / 6020B: RPD ≤ 20 % [memory]). Near the quantitation limit RPDs are
     large by nature, so the rule applies only when both results are at least
     5× the lowest standard (common practice). A missing parent is a warning:
-    the precision is then not shown. Settings: ``duplicate_max_rpd_pct`` (20),
-    ``duplicate_min_multiple`` (5).
+    the precision is then not shown. With a reporting limit, the 5× is of the
+    parent's reporting limit (dilution applied), and below it
+    ``duplicate.near_limit`` judges the difference instead. Settings:
+    ``duplicate_max_rpd_pct`` (20), ``duplicate_min_multiple`` (5).
 
     Fails: S-05-D Pb 14.2 µg/L against S-05 at 10.1 µg/L (RPD 33.7 %). Passes:
     10.4 against 10.1 (RPD 2.9 %).
@@ -333,11 +335,16 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
         if duplicate is None or duplicate.measured is None or parent.measured is None:
             yield _not_judged("duplicate.rpd", context, reading, "a result cannot be quantitated")
             continue
-        if (
-            low is None
-            or duplicate.concentration is None
-            or parent.concentration is None
-            or min(duplicate.measured, parent.measured) < criteria.duplicate_min_multiple * low
+        if duplicate.concentration is None or parent.concentration is None:
+            yield _not_judged("duplicate.rpd", context, reading, "a result cannot be computed")
+            continue
+        smaller = min(duplicate.concentration, parent.concentration)
+        limit = reporting_limit(context, native[0])
+        if limit is not None:
+            if smaller < criteria.duplicate_min_multiple * limit:
+                continue  # near the reporting limit: duplicate.near_limit judges the difference
+        elif low is None or min(duplicate.measured, parent.measured) < (
+            criteria.duplicate_min_multiple * low
         ):
             yield _not_judged(
                 "duplicate.rpd",
