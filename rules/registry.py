@@ -18,6 +18,7 @@ from calwarden.rules.acceptance import (
     blanks,
     brackets,
     calibration,
+    carryover,
     checks,
     coverage,
     replicates,
@@ -64,6 +65,8 @@ RULES: tuple[Rule, ...] = (
     samples.spike_recovery,
     samples.spike_rpd,
     additions.addition_fit,
+    carryover.carryover_next_injection,  # issue 15
+    carryover.carryover_wash_blank,  # issue 15
     # issue 15: reporting limits and qualifiers
     reporting.reporting_limit_rule,
     # what the run holds at all
