@@ -24,6 +24,7 @@ from calwarden.rules.acceptance import (
     replicates,
     reporting,
     samples,
+    standards,
 )
 from calwarden.rules.rule import AnalyteContext, Rule
 
@@ -39,8 +40,10 @@ RULES: tuple[Rule, ...] = (
     calibration.calibration_linearity,
     calibration.calibration_rf_rsd,
     calibration.calibration_rse,
+    standards.calibration_min_rf,  # issue 15
     # check standards, control samples, blanks, internal standards
     checks.check_standard_recovery,
+    standards.check_second_source,  # issue 15
     checks.lcs_recovery,
     reporting.check_low_level,  # issue 15
     coverage.run_required_qc,
