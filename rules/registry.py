@@ -23,6 +23,7 @@ from calwarden.rules.acceptance import (
     coverage,
     replicates,
     reporting,
+    reruns,
     samples,
     standards,
 )
@@ -43,6 +44,7 @@ RULES: tuple[Rule, ...] = (
     standards.calibration_min_rf,  # issue 15
     # check standards, control samples, blanks, internal standards
     checks.check_standard_recovery,
+    reruns.check_rerun,  # issue 15
     standards.check_second_source,  # issue 15
     checks.lcs_recovery,
     reporting.check_low_level,  # issue 15
