@@ -152,8 +152,19 @@ def reporting_limit_rule(context: AnalyteContext) -> Iterator[Finding]:
     below the lowest calibration standard is not supported by the calibration
     (6010D / 6020B: the lowest standard at or below the reporting limit
     [memory]; TNI 2016 V1M4 1.7.1.1): a warning. The results below it are
-    listed (for the record) and each carries its adjusted limit and the data
-    qualifiers ``U``, ``J``, ``B``, ``E`` (module docstring). Settings:
+    listed (for the record) and each carries its adjusted limit.
+
+    Data qualifiers, with the letters and meaning of the US EPA Contract
+    Laboratory Program (the laboratory qualifiers of the CLP Statement of Work
+    for Organic Superfund Methods, SOM02.4 Exhibit B, as the CLP National
+    Functional Guidelines for Organic and Inorganic Superfund Methods Data
+    Review, EPA-540-R-2017-002 and -001, define them [memory]), on samples,
+    duplicates, spikes, LCS and method blanks: ``U`` not detected (below the RL,
+    and below ``detection_limit`` when set); ``J`` estimated (at or above the
+    detection limit, below the RL); ``B`` also found in a method blank of its
+    batch (at or above the blank's detection limit, or its RL; not on a ``U``);
+    ``E`` over the calibration range (``over_range``), given with or without a
+    reporting limit. ``qualifier_letters`` maps them to the lab's own. Settings:
     ``reporting_limit`` (none), a ``reporting_limit`` column, ``detection_limit``
     (none), ``qualifier_letters`` ({}).
 
