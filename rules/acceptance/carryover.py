@@ -11,7 +11,7 @@ from calwarden.rules.acceptance.common import (
     reading_finding,
     result_of,
 )
-from calwarden.rules.acceptance.reporting import reporting_limit
+from calwarden.rules.acceptance.reporting import has_reporting_limits, reporting_limit
 from calwarden.rules.model import Kind, Reading
 from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Severity
@@ -80,7 +80,7 @@ def carryover_next_injection(context: AnalyteContext) -> Iterator[Finding]:
     Fails: S-1 at 60 µg/L (top standard 50), then S-2 at 5 µg/L with an RL of 2:
     S-2 flagged ``carryover``. Passes: S-2 at 0.6 µg/L (< RL).
     """
-    if context.criteria.carryover_wash_blank:
+    if context.criteria.carryover_wash_blank or not has_reporting_limits(context):
         return
     for high, level, following in _high_pairs(context):
         if following is None or following.kind not in _EXPOSED_KINDS:

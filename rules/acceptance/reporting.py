@@ -61,6 +61,13 @@ def reporting_limit(context: AnalyteContext, reading: Reading) -> float | None:
     return None if base is None else base * reading.dilution
 
 
+def has_reporting_limits(context: AnalyteContext) -> bool:
+    """Whether any reading of the analyte has a reporting limit (a cheap test rules start with)."""
+    return context.criteria.reporting_limit is not None or any(
+        r.reporting_limit is not None for r in context.readings
+    )
+
+
 def _detection_limit(context: AnalyteContext, reading: Reading) -> float | None:
     base = context.criteria.detection_limit
     return None if base is None else base * reading.dilution
@@ -90,8 +97,17 @@ def qualified(context: AnalyteContext, results: Sequence[Result]) -> list[Result
 
     Runs after every rule, on the flagged results: ``E`` follows ``over_range``.
     """
-    readings = {r.seq: r for r in context.readings}
     letters = context.criteria.qualifier_letters
+    if not has_reporting_limits(context):
+        # Fast path, the usual case: only "E" can be given.
+        over = letters.get("E", "E")
+        return [
+            replace(result, qualifiers=(over,))
+            if result.kind in _QUALIFIED_KINDS and Flag.OVER_RANGE in result.flags
+            else result
+            for result in results
+        ]
+    readings = {r.seq: r for r in context.readings}
     blanks = _detected_blanks(context)
     qualified_results = []
     for result in results:
@@ -384,6 +400,8 @@ def duplicate_near_limit(context: AnalyteContext) -> Iterator[Finding]:
     S-1 at 3.0 and S-1-D at 4.1 µg/L (difference 1.1, RPD 31 %).
     """
     criteria = context.criteria
+    if not has_reporting_limits(context):
+        return
     for reading in context.of_kind(Kind.DUP):
         parent = _parent(context, reading)
         if parent is None:

@@ -17,7 +17,7 @@ from calwarden.rules.acceptance.common import (
     span,
     within,
 )
-from calwarden.rules.acceptance.reporting import reporting_limit
+from calwarden.rules.acceptance.reporting import has_reporting_limits, reporting_limit
 from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
 from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Result, Severity
@@ -176,8 +176,9 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
     if calibration is None or calibration.range_low is None:
         return
     low = calibration.range_low
+    limits = has_reporting_limits(context)
     for reading, measured in quantitated_field_results(context):
-        limit = reporting_limit(context, reading)
+        limit = reporting_limit(context, reading) if limits else None
         if limit is not None and measured * reading.dilution < limit:
             continue  # reported as "< RL": reporting.limit's
         if measured < low:
@@ -194,7 +195,7 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
                 flag=Flag.BELOW_RANGE,
             )
     for reading, result, below in off_curve_results(context):
-        if reporting_limit(context, reading) is not None:
+        if limits and reporting_limit(context, reading) is not None:
             continue  # under the curve's bottom, so below the limit: reported as "< RL"
         if below and reading.kind in REPORTABLE_KINDS:
             yield reading_finding(
