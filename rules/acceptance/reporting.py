@@ -215,13 +215,15 @@ def reporting_limit_rule(context: AnalyteContext) -> Iterator[Finding]:
         if limit is not None and result is not None and _below(context, result, limit):
             below.append((reading, limit))
     if below:
-        shown = ", ".join(f"{r.sample_id} < {number(limit)}" for r, limit in below[:8])
+        shown = ", ".join(
+            f"{r.sample_id} < {number(limit)}{context.unit}" for r, limit in below[:8]
+        )
         more = f" and {len(below) - 8} more" if len(below) > 8 else ""
         yield Finding(
             "reporting.limit",
             Severity.INFO,
             f"{len(below)} {context.analyte} result(s) below the reporting limit, reported as "
-            f"less than it{context.unit and ' (' + context.unit.strip() + ')'}: {shown}{more}",
+            f"less than it: {shown}{more}",
             analyte=context.analyte,
             sample_id=below[0][0].sample_id,
             seq=below[0][0].seq,
