@@ -20,6 +20,9 @@ from calwarden.rules.model import Kind
 
 Range = tuple[float, float]
 
+#: The data qualifiers calwarden gives (rules/acceptance/reporting.py says what each means).
+GUIDANCE_QUALIFIERS = ("U", "J", "B", "E")
+
 
 class _Frozen(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
@@ -85,6 +88,46 @@ class AnalyteCriteria(_Frozen):
     # --- standard addition: common practice.
     addition_min_points: int = Field(default=3, ge=2)
     addition_min_r_squared: float = Field(default=0.99, ge=0, le=1)
+    # --- issue 15: reporting limits, qualifiers, low-level checks, carry-over, sources,
+    # CCV re-runs (rules/acceptance/reporting.py, carryover.py, standards.py, reruns.py).
+    # Reporting limit in the measured solution (before dilution); None: no reporting limit
+    # (a `reporting_limit` column gives a row's own). Results below it × dilution: "< RL".
+    reporting_limit: float | None = Field(default=None, gt=0)
+    # Detection limit (MDL) in the measured solution; between it and the RL: "J", below: "U".
+    detection_limit: float | None = Field(default=None, gt=0)
+    # The lab's own letters for the guidance's qualifiers U, J, B, E (e.g. {B: V}).
+    qualifier_letters: dict[str, str] = Field(default_factory=dict)
+    # Low-level CCV (llccv) at the RL: ±30 % (6010D / 6020B LLCCV [memory]).
+    low_check_recovery_pct: Range = (70.0, 130.0)
+    # A failing low-level check concerns results below this multiple of its nominal (ours).
+    low_check_covers_multiple: float = Field(default=2.0, gt=0)
+    # Duplicates below duplicate_min_multiple × RL: |difference| ≤ this many RLs (common
+    # practice, the "± RL" control limit of US EPA inorganic data review [memory]).
+    duplicate_max_difference_rl: float = Field(default=1.0, gt=0)
+    # Carry-over: a result above this (None: the top standard) checks the next injection.
+    carryover_high: float | None = Field(default=None, gt=0)
+    # Carry-over: a blank (ccb) must follow each high result (common practice).
+    carryover_wash_blank: bool = False
+    # Average response factor of the standards at least this (8260D / 8270E tables [memory]).
+    min_response_factor: float | None = Field(default=None, gt=0)
+    # The ICV's `source` must be given and differ from the standards' (6010D / 6020B [memory]).
+    require_second_source: bool = False
+    # A failing CCV may be superseded by re-runs right after it: none | single (one re-run
+    # that passes) | two_passing (two consecutive passing ones, TNI 2016 V1M4 1.7.2 [memory]).
+    ccv_rerun_policy: Literal["none", "single", "two_passing"] = "none"
+    # Recoveries rounded to this many significant digits before the limits (None: not rounded).
+    compare_rounded_digits: int | None = Field(default=None, ge=1, le=15)
+
+    @field_validator("qualifier_letters")
+    @classmethod
+    def _known_qualifiers(cls, value: dict[str, str]) -> dict[str, str]:
+        for letter, own in value.items():
+            if letter not in GUIDANCE_QUALIFIERS:
+                known = ", ".join(GUIDANCE_QUALIFIERS)
+                raise ValueError(f"qualifier_letters: unknown qualifier {letter!r}; known: {known}")
+            if not own.strip() or len(own) > 8:
+                raise ValueError(f"qualifier_letters.{letter}: 1 to 8 characters, not {own!r}")
+        return value
 
     @field_validator("required_qc")
     @classmethod

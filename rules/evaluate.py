@@ -14,6 +14,7 @@ from statistics import fmean
 
 import numpy as np
 
+from calwarden.rules.acceptance.reporting import qualified
 from calwarden.rules.acceptance.samples import suggested_dilution
 from calwarden.rules.calibration import (
     PARAMETERS,
@@ -182,6 +183,7 @@ def _judge_analyte(
         if marks:
             result = _with_flags(result, marks, calibration.range_high if calibration else None)
         results.append(result)
+    results = qualified(context, results)  # reporting limits and data qualifiers, after the flags
     fit_of = curve_of(calibration, rows)
     replicates = [replicate_group(members, fit_of) for members in replicate_sets(results)]
     return _AnalyteJudgement(findings, calibration, results, list(series.values()), replicates)

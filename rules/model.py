@@ -32,10 +32,12 @@ class Kind(StrEnum):
     MS = "ms"  # matrix spike of ``parent``
     MSD = "msd"  # matrix spike duplicate of ``parent``
     ADDITION = "addition"  # one point of a standard-addition series of ``parent``
+    # --- issue 15, reporting limits (rules/acceptance/reporting.py)
+    LLCCV = "llccv"  # low-level calibration verification at the reporting limit
 
 
 #: Kinds that must carry a known concentration.
-NEEDS_NOMINAL = frozenset({Kind.CAL, Kind.ICV, Kind.CCV, Kind.LCS})
+NEEDS_NOMINAL = frozenset({Kind.CAL, Kind.ICV, Kind.CCV, Kind.LCS, Kind.LLCCV})
 #: Kinds that must name the native sample they were made from.
 NEEDS_PARENT = frozenset({Kind.DUP, Kind.MS, Kind.MSD, Kind.ADDITION})
 #: Kinds that must say how much was added.
@@ -50,7 +52,7 @@ FIELD_KINDS = frozenset({Kind.SAMPLE, Kind.DUP, Kind.MS, Kind.MSD, Kind.LCS, Kin
 REPORTABLE_KINDS = frozenset({Kind.SAMPLE, Kind.DUP, Kind.MS, Kind.MSD, Kind.LCS})
 
 
-_NUMERIC_COLUMNS = ("response", "nominal", "istd_response", "dilution", "added")
+_NUMERIC_COLUMNS = ("response", "nominal", "istd_response", "dilution", "added", "reporting_limit")
 
 
 def _require_finite(value: float | None, line: int, column: str) -> None:
@@ -79,6 +81,9 @@ class Reading:
     run: str | None = None
     instrument: str | None = None
     batch: str | None = None  # preparation batch: the LCS and method blank judge its samples
+    # --- issue 15, reporting limits and standards' sources (rules/acceptance/reporting.py)
+    reporting_limit: float | None = None  # before dilution; the row's own, over the setting's
+    source: str | None = None  # where a standard came from (maker, lot): the ICV's must differ
 
     def __post_init__(self) -> None:
         if not self.sample_id:
@@ -89,6 +94,7 @@ class Reading:
         # a cheap first test on the hot path, then the precise one names the column.
         total = self.response + self.dilution
         total += (self.nominal or 0.0) + (self.istd_response or 0.0) + (self.added or 0.0)
+        total += self.reporting_limit or 0.0
         if not math.isfinite(total):
             for column in _NUMERIC_COLUMNS:
                 _require_finite(getattr(self, column), self.line, column)
@@ -113,6 +119,12 @@ class Reading:
                 f"a '{self.kind}' row needs a spike greater than zero, got {self.added:g}",
                 self.line,
                 "added",
+            )
+        if self.reporting_limit is not None and self.reporting_limit <= 0:
+            raise InputError(
+                f"reporting_limit must be greater than zero, got {self.reporting_limit:g}",
+                self.line,
+                "reporting_limit",
             )
         if self.istd_response is not None and self.istd_response <= 0:
             raise InputError(

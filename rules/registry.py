@@ -18,10 +18,14 @@ from calwarden.rules.acceptance import (
     blanks,
     brackets,
     calibration,
+    carryover,
     checks,
     coverage,
     replicates,
+    reporting,
+    reruns,
     samples,
+    standards,
 )
 from calwarden.rules.rule import AnalyteContext, Rule
 
@@ -37,9 +41,13 @@ RULES: tuple[Rule, ...] = (
     calibration.calibration_linearity,
     calibration.calibration_rf_rsd,
     calibration.calibration_rse,
+    standards.calibration_min_rf,  # issue 15
     # check standards, control samples, blanks, internal standards
     checks.check_standard_recovery,
+    reruns.check_rerun,  # issue 15
+    standards.check_second_source,  # issue 15
     checks.lcs_recovery,
+    reporting.check_low_level,  # issue 15
     coverage.run_required_qc,
     blanks.blank_contamination,
     samples.istd_recovery,
@@ -50,6 +58,7 @@ RULES: tuple[Rule, ...] = (
     brackets.bracket_blank,
     blanks.blank_method_multiple,
     checks.lcs_batch,
+    reporting.bracket_low_level,  # issue 15
     # the samples' own results
     samples.result_computable,
     replicates.replicate_rsd,
@@ -57,9 +66,14 @@ RULES: tuple[Rule, ...] = (
     samples.range_on_curve,
     samples.range_under,
     samples.duplicate_rpd,
+    reporting.duplicate_near_limit,  # issue 15
     samples.spike_recovery,
     samples.spike_rpd,
     additions.addition_fit,
+    carryover.carryover_next_injection,  # issue 15
+    carryover.carryover_wash_blank,  # issue 15
+    # issue 15: reporting limits and qualifiers
+    reporting.reporting_limit_rule,
     # what the run holds at all
     coverage.run_field_samples,
 )

@@ -44,6 +44,9 @@ class Flag(StrEnum):
     LCS_FAILED = "lcs_failed"  # the LCS of its preparation batch failed
     BEYOND_INTERVAL = "beyond_interval"  # more field samples than allowed since the last check
     NOT_COMPUTABLE = "not_computable"  # a number of its result overflowed or is undefined
+    # --- issue 15 (rules/acceptance/reporting.py, carryover.py)
+    LOW_CHECK_FAILED = "low_check_failed"  # a low result next to a failing low-level check
+    CARRYOVER = "carryover"  # right after a result above the top standard: carry-over suspected
 
 
 #: Flags that make a field sample's result unreportable: it goes on the re-run list.
@@ -62,6 +65,8 @@ RERUN_FLAGS = frozenset(
         Flag.LCS_FAILED,
         Flag.BEYOND_INTERVAL,
         Flag.NOT_COMPUTABLE,
+        Flag.LOW_CHECK_FAILED,
+        Flag.CARRYOVER,
     }
 )
 
@@ -117,6 +122,10 @@ class Result:
     unit: str | None
     flags: tuple[Flag, ...] = ()
     suggested_dilution: float | None = None  # only with OVER_RANGE
+    # --- issue 15: the reporting limit × dilution, and the data qualifiers (lab's letters)
+    reporting_limit: float | None = None
+    below_reporting_limit: bool = False  # reported as "< reporting_limit"
+    qualifiers: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True, slots=True)

@@ -73,16 +73,17 @@ def test_out_writes_verdict_flagged_copy_and_report(tmp_path: Path) -> None:
     source = FAILING.read_text(encoding="utf-8").splitlines()
     flagged = (tmp_path / "bwl-metals-fail.flagged.csv").read_text(encoding="utf-8").splitlines()
     assert len(flagged) == len(source)
-    assert flagged[0] == source[0] + ",concentration,uncertainty,result_unit,flags"
+    added = "concentration,uncertainty,result_unit,flags,reported_as,reporting_limit,qualifiers"
+    assert flagged[0] == f"{source[0]},{added}"
     assert all(row.startswith(original) for row, original in zip(flagged, source, strict=True))
 
 
 def test_flagged_copy_marks_the_over_range_sample(tmp_path: Path) -> None:
-    """The flagged copy carries the over_range flag on the over-range sample's Cu row."""
+    """The flagged copy carries the over_range flag, and the E qualifier, on the sample's Cu row."""
     main(["check", str(FAILING), "--out", str(tmp_path)])
     rows = (tmp_path / "bwl-metals-fail.flagged.csv").read_text(encoding="utf-8").splitlines()
     cu_18 = [r for r in rows if r.startswith("38,BW-1124-18,sample,Cu,")]
-    assert len(cu_18) == 1 and cu_18[0].endswith("over_range")
+    assert len(cu_18) == 1 and cu_18[0].endswith("over_range,,,E")
 
 
 def test_error_verdict_is_written_too(tmp_path: Path) -> None:

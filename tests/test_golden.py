@@ -59,7 +59,14 @@ def reduce(document: dict[str, Any]) -> dict[str, Any]:
             for analyte, c in document["calibrations"].items()
         },
         "results": [
-            [r["seq"], r["sample_id"], r["analyte"], _round(r["concentration"]), r["flags"]]
+            [
+                r["seq"],
+                r["sample_id"],
+                r["analyte"],
+                _round(r["concentration"]),
+                r["flags"],
+                r["qualifiers"],
+            ]
             for r in document["results"]
         ],
     }

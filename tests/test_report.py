@@ -4,9 +4,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from calwarden.daemon.outputs.files import flagged_csv
 from calwarden.daemon.outputs.report import render
+from calwarden.daemon.parsing.native import read_native
 from calwarden.daemon.pipeline import judge_file
 from calwarden.daemon.settings.config import load_config
+from calwarden.rules.evaluate import evaluate
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
@@ -87,3 +90,32 @@ def test_report_shows_replicate_injections_as_one_result(tmp_path: Path) -> None
     assert "Replicate injections (1)" in report
     line = next(row for row in report.splitlines() if row.startswith("S-07 "))
     assert f"{group['rsd_pct']:.1f}" in line and " 3 " in line
+
+
+def _below_limit_run(tmp_path: Path) -> Path:
+    """The rule cases' Zn run with S-1 at 1.5 µg/L diluted 10× (15 µg/L) under an RL of 2 (20)."""
+    base = (Path(__file__).parent / "cases" / "_base.csv").read_text(encoding="utf-8")
+    header, *rows = base.splitlines()
+    run = tmp_path / "limits.csv"
+    lines = [f"{header},reporting_limit", *(f"{row}," for row in rows)]
+    lines += ["9,S-1,sample,Zn,1600,,10,,,,,µg/L,2", "10,CCV-1,ccv,Zn,10100,10,,,,,,µg/L,"]
+    run.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return run
+
+
+def test_report_shows_a_result_below_the_reporting_limit_as_less_than_it(tmp_path: Path) -> None:
+    """A result under its dilution-adjusted reporting limit reads "< 20" with its U qualifier."""
+    document = judge_file(_below_limit_run(tmp_path), load_config(None)).document
+    (result,) = [r for r in document["results"] if r["sample_id"] == "S-1"]
+    assert result["reported_as"] == "< 20" and result["reporting_limit"] == 20.0
+    assert result["qualifiers"] == ["U"]
+    line = next(row for row in render(document).splitlines() if row.startswith("9 "))
+    assert "< 20" in line and line.split()[-1] == "U"
+
+
+def test_flagged_copy_carries_the_reporting_limit_and_qualifiers(tmp_path: Path) -> None:
+    """The flagged copy's row of S-1 ends with "< 20", the limit 20.0 and the qualifier U."""
+    parsed = read_native(_below_limit_run(tmp_path))
+    text = flagged_csv(parsed.table, evaluate(parsed.run, load_config(None).criteria)).decode()
+    row = next(line for line in text.splitlines() if line.startswith("9,S-1,"))
+    assert row.endswith(",< 20,20.0,U")

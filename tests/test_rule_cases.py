@@ -60,6 +60,9 @@ def test_rule_case(rule_id: str, case: dict[str, Any]) -> None:
             assert flag in flags, (seq, flags)
         if not expected:
             assert not flags, (seq, flags)
+    for seq, expected in (case.get("qualifiers") or {}).items():
+        given = [q for r in verdict.results if r.seq == seq for q in r.qualifiers]
+        assert given == expected, (seq, given)
 
 
 def test_every_rule_has_a_passing_and_a_failing_case() -> None:

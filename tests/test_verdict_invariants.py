@@ -73,20 +73,19 @@ EXTREMES = ["1e308", "-1e308", "1.7976931348623157e308", "1e300", "1e-308", "5e-
 
 
 @st.composite
-def _sequences(draw: st.DrawFn) -> str:
+def _sequences(draw: st.DrawFn, low_level: bool = False) -> str:
     """A run: the calibration, then QC and samples in a random order with random readings."""
     rows = list(CALIBRATION)
     seq = len(CALIBRATION)
     samples: list[str] = []
     for _ in range(draw(st.integers(1, 18))):
         seq += 1
-        kind = draw(
-            st.sampled_from(["sample"] * 5 + ["icv", "ccv", "ccv", "ccb", "mb", "lcs", "dup", "ms"])
-        )
+        kinds = ["sample"] * 5 + ["icv", "ccv", "ccv", "ccb", "mb", "lcs", "dup", "ms"]
+        kind = draw(st.sampled_from([*kinds, "llccv", "llccv"] if low_level else kinds))
         level = draw(st.sampled_from([0.0, 0.4, 2.0, 8.0, 30.0, 70.0]))
         # mostly a true reading; sometimes 20 % off (a failing check or LCS)
         bias = draw(st.sampled_from([1.0, 1.0, 1.0, 0.8, 1.25]))
-        nominal = {"icv": 20.0, "ccv": 10.0, "lcs": 20.0}.get(kind)
+        nominal = {"icv": 20.0, "ccv": 10.0, "lcs": 20.0, "llccv": 2.0}.get(kind)
         concentration = nominal if nominal is not None else level
         response = 100 + 1000 * concentration * bias
         dilution = draw(st.sampled_from(["", "", "", "10", "1e308"]))
@@ -111,12 +110,12 @@ def _sequences(draw: st.DrawFn) -> str:
     return "\n".join([HEADER, *rows]) + "\n"
 
 
-def _document(text: str) -> dict[str, Any] | None:
+def _document(text: str, criteria: dict[str, Any] | None = None) -> dict[str, Any] | None:
     try:
         run = normalise(decode_table(text.encode("utf-8")), run_name="generated")
     except InputError:
         return None
-    verdict = evaluate(run, build_criteria({}))
+    verdict = evaluate(run, build_criteria({"defaults": criteria or {}}))
     return verdict_to_json(verdict, source_path="generated.csv", sha256=None, criteria_sha256=None)
 
 
@@ -127,6 +126,29 @@ def test_generated_runs_keep_the_invariants(text: str) -> None:
     document = _document(text)
     assert document is not None
     assert problems(document) == [], text
+
+
+#: Criteria of issue 15's rules: reporting limits, carry-over, CCV re-runs, rounding.
+_ISSUE_15_CRITERIA = st.fixed_dictionaries(
+    {
+        "reporting_limit": st.sampled_from([1.0, 2.0]),
+        "detection_limit": st.sampled_from([0.3, 0.5]),
+        "carryover_wash_blank": st.booleans(),
+        "ccv_rerun_policy": st.sampled_from(["none", "single", "two_passing"]),
+        "compare_rounded_digits": st.sampled_from([None, 3]),
+    }
+)
+
+
+@settings(derandomize=True, max_examples=80, deadline=None, database=None)
+@given(_sequences(low_level=True), _ISSUE_15_CRITERIA)
+def test_generated_runs_with_reporting_limits_keep_the_invariants(
+    text: str, criteria: dict[str, Any]
+) -> None:
+    """Low-level checks, reporting limits, carry-over and re-run policies keep the invariants."""
+    document = _document(text, criteria)
+    assert document is not None
+    assert problems(document) == [], (text, criteria)
 
 
 #: Native fixtures whose rows may be mutated, and the numeric columns mutated.

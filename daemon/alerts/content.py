@@ -293,6 +293,8 @@ _WHY = {
     "beyond_interval": "run after more samples than allowed since a check standard",
     "not_computable": "its result cannot be computed",
     "qc_failed": "its QC comparison failed (measure it again)",
+    "low_check_failed": "a low-level check next to it failed",
+    "carryover": "right after a result above the top standard (carry-over)",
 }
 
 

@@ -16,14 +16,22 @@ import time
 from pathlib import Path
 
 from calwarden.daemon.outputs.report import render
-from calwarden.daemon.outputs.verdict_json import dump_verdict
+from calwarden.daemon.outputs.verdict_json import dump_verdict, reported_as
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.parsing.table import RawTable, header_key
 from calwarden.rules.model import Kind
 from calwarden.rules.verdict import Result, Verdict
 
 #: Columns the flagged copy adds after the input's own.
-ADDED_COLUMNS = ("concentration", "uncertainty", "result_unit", "flags")
+ADDED_COLUMNS = (
+    "concentration",
+    "uncertainty",
+    "result_unit",
+    "flags",
+    "reported_as",  # "< 10" below the reporting limit (dilution applied)
+    "reporting_limit",
+    "qualifiers",
+)
 _REPLACE_ATTEMPTS = 5  # Windows refuses os.replace while another process holds the target open
 
 
@@ -155,11 +163,14 @@ def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
                 _cell(found.uncertainty),
                 found.unit or "",
                 " ".join(flag.value for flag in found.flags),
+                reported_as(found) or "",
+                _cell(found.reporting_limit),
+                " ".join(found.qualifiers),
             ]
         elif key in back_calculated:
-            extra = [_cell(back_calculated[key]), "", "", ""]
+            extra = [_cell(back_calculated[key]), "", "", "", "", "", ""]
         else:
-            extra = ["", "", "", ""]
+            extra = [""] * len(ADDED_COLUMNS)
         writer.writerow([*(neutralised(field) for field in row.fields), *extra])
     return buffer.getvalue().encode("utf-8")
 

@@ -29,6 +29,8 @@ FLAG_WORDS = {
     "beyond_interval": "more samples than allowed since the last check standard",
     "not_computable": "its result cannot be computed",
     "qc_failed": "its QC comparison failed (measure it again)",
+    "low_check_failed": "a low-level check next to it failed",
+    "carryover": "right after a result above the top standard (carry-over)",
 }
 _WORD = {"pass": "PASS", "fail": "FAIL", "error": "ERROR"}
 
@@ -155,20 +157,29 @@ def _calibrations(document: VerdictDocument) -> list[str]:
 def _results(document: VerdictDocument) -> list[str]:
     results = document.get("results", [])
     lines = _heading(f"Results ({len(results)})")
-    rows = [("seq", "sample", "kind", "analyte", "concentration", "± u", "unit", "flags")]
+    # The reporting-limit columns only when a result has a limit or a qualifier.
+    limits = any(r.get("reporting_limit") is not None or r.get("qualifiers") for r in results)
+    header = ("seq", "sample", "kind", "analyte", "concentration", "± u", "unit")
+    more = ("RL", "qualifiers", "flags") if limits else ("flags",)
+    rows = [header + more]
     for r in results:
-        rows.append(
-            (
-                str(r["seq"]),
-                r["sample_id"],
-                r["kind"],
-                r["analyte"],
-                _number(r["concentration"]),
-                _number(r["uncertainty"], 2),
-                r.get("unit") or "",
-                " ".join(r["flags"]),
-            )
+        # Below the reporting limit the report shows "< RL", as the result is reported.
+        shown = r.get("reported_as") or _number(r["concentration"])
+        cells = (
+            str(r["seq"]),
+            r["sample_id"],
+            r["kind"],
+            r["analyte"],
+            shown,
+            _number(r["uncertainty"], 2),
+            r.get("unit") or "",
         )
+        flags = " ".join(r["flags"])
+        if limits:
+            qualifiers = " ".join(r.get("qualifiers") or [])
+            rows.append((*cells, _number(r.get("reporting_limit")), qualifiers, flags))
+        else:
+            rows.append((*cells, flags))
     lines.extend(_table(rows))
     return lines
 

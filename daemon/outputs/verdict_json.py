@@ -4,7 +4,8 @@ Stable keys (see README, "The verdict JSON"): ``status``, ``run``, ``source``,
 ``calwarden_version``, ``criteria_sha256``, ``findings``, ``calibrations``,
 ``results``, ``reruns``, ``repeat``, ``error``. Added since: ``replicates`` (one entry
 per sample injected more than once: the reported mean, its uncertainty, the %RSD, the
-injections' seqs). More keys may be added; none is removed or renamed.
+injections' seqs); a result's ``reporting_limit``, ``reported_as`` and ``qualifiers``.
+More keys may be added; none is removed or renamed.
 The document's shape, key by key, is ``verdict_model.VerdictDocument``: a new
 key is added there too.
 """
@@ -176,7 +177,18 @@ def _result(result: Result) -> ResultEntry:
         "response": _number(result.signal),
         "flags": [flag.value for flag in result.flags],
         "suggested_dilution": _number(result.suggested_dilution),
+        # issue 15: the reporting limit (dilution applied) and the data qualifiers
+        "reporting_limit": _number(result.reporting_limit),
+        "reported_as": reported_as(result),
+        "qualifiers": list(result.qualifiers),
     }
+
+
+def reported_as(result: Result) -> str | None:
+    """``< 10`` for a result below its reporting limit (dilution applied), else ``None``."""
+    if not result.below_reporting_limit or result.reporting_limit is None:
+        return None
+    return f"< {result.reporting_limit:.4g}"
 
 
 def _replicate(group: ReplicateGroup) -> ReplicateEntry:

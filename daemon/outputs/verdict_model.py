@@ -141,6 +141,9 @@ class ResultEntry(TypedDict):
     response: float | None
     flags: list[str]  # the README lists them
     suggested_dilution: float | None
+    reporting_limit: float | None  # dilution applied; None: no reporting limit
+    reported_as: str | None  # "< 10" when below the reporting limit, else None
+    qualifiers: list[str]  # data qualifiers, in the lab's letters (U, J, B, E by default)
 
 
 class AdditionEntry(TypedDict):

@@ -64,11 +64,16 @@ OPTIONAL_FIELDS: tuple[str, ...] = (
     "run",
     "instrument",
     "batch",
+    # issue 15, reporting limits and standards' sources
+    "reporting_limit",
+    "source",
 )
 #: Every column the native format knows, required first.
 NATIVE_FIELDS: tuple[str, ...] = REQUIRED_FIELDS + OPTIONAL_FIELDS
 #: Native fields whose cells are decimal numbers (``seq`` is a whole one).
-NUMBER_FIELDS = frozenset({"response", "nominal", "istd_response", "dilution", "added"})
+NUMBER_FIELDS = frozenset(
+    {"response", "nominal", "istd_response", "dilution", "added", "reporting_limit"}
+)
 
 #: The largest seq: every JSON reader holds it exactly (a double's whole numbers end at
 #: 2^53 - 1) and so does the ledger's 64-bit INTEGER (a larger one stopped the daemon).
@@ -237,12 +242,13 @@ def normalise(
             seq, sample_id, kind, analyte, response,
             nominal, istd, istd_response, dilution, unit,
             acquired, parent, added, run, instrument, batch,
+            reporting_limit, source,
         ) = cells  # fmt: skip
         # Fast path: plain conversions. Anything odd goes to _check_cells, which
         # applies the strict rules one cell at a time and raises the precise error.
         # nan and inf convert here; Reading refuses them, and the handler below
         # then names the cell the way _check_cells words it.
-        numbers = seq + response + nominal + istd_response + dilution + added
+        numbers = seq + response + nominal + istd_response + dilution + added + reporting_limit
         try:
             v_seq = int(seq)
             v_response = float(response)
@@ -250,6 +256,7 @@ def normalise(
             v_istd_response = float(istd_response) if istd_response else None
             v_dilution = float(dilution) if dilution else 1.0
             v_added = float(added) if added else None
+            v_reporting_limit = float(reporting_limit) if reporting_limit else None
             v_kind = kinds[kind.lower()]
         except (ValueError, KeyError):
             _check_cells(cells, line)
@@ -275,6 +282,8 @@ def normalise(
                 run=run or None,
                 instrument=instrument or None,
                 batch=batch or None,
+                reporting_limit=v_reporting_limit,
+                source=source or None,
             )
         except InputError:
             # A number the fast path let through (nan, inf, 1e999) gets the precise message.

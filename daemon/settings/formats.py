@@ -23,6 +23,7 @@ from calwarden.rules.model import Kind
 MAPPABLE_FIELDS = (
     "seq", "sample_id", "kind", "analyte", "response", "nominal", "istd", "istd_response",
     "dilution", "unit", "acquired", "parent", "added", "run", "instrument", "batch",
+    "reporting_limit", "source",
 )  # fmt: skip
 
 

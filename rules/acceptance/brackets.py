@@ -13,6 +13,7 @@ from calwarden.rules.acceptance.common import (
     istd_fails,
     number,
     result_of,
+    superseded_checks,
 )
 from calwarden.rules.model import CHECK_KINDS, FIELD_KINDS, Kind, Reading
 from calwarden.rules.rule import AnalyteContext, rule
@@ -119,8 +120,9 @@ def bracket_reportable(context: AnalyteContext) -> Iterator[Finding]:
     check at all, are unreportable here whatever that setting. A check whose
     internal standard failed (``istd.recovery``) is no valid bracket however
     well it recovered: its ratio no longer shows what the samples' ratios do
-    (common practice). No settings: it follows the limits of ``check.recovery``
-    and ``istd.recovery``.
+    (common practice). A failing CCV that ``ccv_rerun_policy`` lets an immediate
+    passing re-run stand for (``check.rerun``) breaks no bracket. No settings of
+    its own: it follows the limits of ``check.recovery`` and ``istd.recovery``.
 
     Fails: CCV-2 Zn failed, so the Zn results between CCV-1 and CCV-3 are
     flagged; so are they when CCV-2 recovered 101 % with its internal standard
@@ -128,8 +130,10 @@ def bracket_reportable(context: AnalyteContext) -> Iterator[Finding]:
     """
     sequence = _sequence(context)
     istd_failed = {r.seq for r in sequence.checks if istd_fails(context, r)}
+    superseded = superseded_checks(context)  # failing CCVs an allowed re-run stands for
     passing = {
-        r.seq: check_passes(context, r) and r.seq not in istd_failed for r in sequence.checks
+        r.seq: (check_passes(context, r) or r.seq in superseded) and r.seq not in istd_failed
+        for r in sequence.checks
     }
     spans: dict[tuple[int | None, int | None], list[Reading]] = {}
     for sample in sequence.field:

@@ -11,8 +11,10 @@ from calwarden.rules.acceptance.common import (
     recovery_finding,
     recovery_pct,
     result_of,
+    rounded_for_limits,
     same_batch,
     span,
+    superseded_checks,
     within,
 )
 from calwarden.rules.model import Kind, Reading
@@ -29,9 +31,17 @@ def check_standard_recovery(context: AnalyteContext) -> Iterator[Finding]:
     brackets are judged by ``bracket.reportable``. Settings:
     ``icv_recovery_pct`` and ``ccv_recovery_pct`` (90–110).
 
+    With ``ccv_rerun_policy`` allowing it, a failing CCV re-run at once and
+    passing is ``check.rerun``'s (info) instead. With ``compare_rounded_digits``
+    set (none), the recovery is rounded to that many significant digits before
+    it is compared with the limits (the method's reporting digits).
+
     Fails: CCV-2 Zn recovered 84.0 %. Passes: CCV-2 Zn recovered 101.3 %.
     """
+    superseded = superseded_checks(context)
     for reading in context.of_kind(Kind.ICV, Kind.CCV):
+        if reading.seq in superseded:
+            continue  # check.rerun: an allowed re-run passed
         recovery = check_recovery(context, reading)
         limits = check_limits(context, reading.kind)
         finding = recovery_finding("check.recovery", context, reading, recovery, limits)
@@ -61,7 +71,8 @@ def lcs_recovery(context: AnalyteContext) -> Iterator[Finding]:
 
 def _lcs_recovery(context: AnalyteContext, reading: Reading) -> float | None:
     result = result_of(context, reading)
-    return recovery_pct(result.concentration if result else None, reading.nominal)
+    recovery = recovery_pct(result.concentration if result else None, reading.nominal)
+    return rounded_for_limits(context, recovery)
 
 
 #: What a failing LCS speaks for: the samples prepared with it.

@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
+from decimal import ROUND_HALF_UP, Decimal
 
 from calwarden.rules.criteria import Range
-from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
+from calwarden.rules.model import CHECK_KINDS, FIELD_KINDS, REPORTABLE_KINDS, Kind, Reading
 from calwarden.rules.rule import AnalyteContext
 from calwarden.rules.verdict import Calibration, Finding, Flag, Limit, Result, Severity
 
@@ -42,9 +44,13 @@ def rpd_pct(first: float, second: float) -> float | None:
 
 
 def check_recovery(context: AnalyteContext, reading: Reading) -> float | None:
-    """Recovery of an ICV or CCV, in percent (``None``: not quantifiable)."""
+    """Recovery of an ICV, CCV or low-level CCV, in percent (``None``: not quantifiable).
+
+    Rounded to ``compare_rounded_digits`` significant digits when that is set.
+    """
     result = context.results.get(reading.seq)
-    return recovery_pct(result.concentration if result else None, reading.nominal)
+    recovery = recovery_pct(result.concentration if result else None, reading.nominal)
+    return rounded_for_limits(context, recovery)
 
 
 def check_limits(context: AnalyteContext, kind: Kind) -> Range:
@@ -202,3 +208,56 @@ def off_curve_results(context: AnalyteContext) -> Iterator[tuple[Reading, Result
 
 
 _OWN_RULE_KINDS = frozenset({Kind.ICV, Kind.CCV, Kind.ADDITION})
+
+
+# --------------------------------------------------------------------------- issue 15, item 10
+
+
+def rounded_for_limits(context: AnalyteContext, value: float | None) -> float | None:
+    """``value`` rounded to ``compare_rounded_digits`` significant digits (None: as it is).
+
+    Half away from zero on the decimal digits shown (ASTM E29's rounding method
+    [memory]), so 89.95 % to three digits is 90.0 %, whatever its binary form.
+    """
+    digits = context.criteria.compare_rounded_digits
+    if digits is None or value is None or value == 0 or not math.isfinite(value):
+        return value
+    exact = Decimal(repr(value))
+    exponent = exact.adjusted() - digits + 1
+    return float(exact.quantize(Decimal(1).scaleb(exponent), rounding=ROUND_HALF_UP))
+
+
+def superseded_checks(context: AnalyteContext) -> dict[int, tuple[Reading, ...]]:
+    """Failing CCVs that the re-run policy lets immediate passing re-runs stand for, by seq.
+
+    ``ccv_rerun_policy``: ``single``, one CCV right after the failing one (no field
+    sample between) that passes; ``two_passing``, two such CCVs in a row that both
+    pass. A CCV that is itself within the re-runs of an earlier failing one is never
+    superseded: one failure, one chance (no testing into compliance).
+    """
+    policy = context.criteria.ccv_rerun_policy
+    if policy == "none":
+        return {}
+    needed = 1 if policy == "single" else 2
+    checks = [r for r in context.readings if r.kind in CHECK_KINDS]
+    field = [r.seq for r in context.readings if r.kind in FIELD_KINDS]
+
+    def immediate(first: Reading, last: Reading) -> bool:
+        return not any(first.seq < seq < last.seq for seq in field)
+
+    passes = {r.seq: check_passes(context, r) for r in checks}
+    found: dict[int, tuple[Reading, ...]] = {}
+    for index, check in enumerate(checks):
+        if check.kind is not Kind.CCV or passes[check.seq]:
+            continue
+        before = checks[max(0, index - needed) : index]
+        if any(r.kind is Kind.CCV and not passes[r.seq] and immediate(r, check) for r in before):
+            continue  # a re-run of an earlier failure
+        reruns = tuple(checks[index + 1 : index + 1 + needed])
+        if (
+            len(reruns) == needed
+            and all(r.kind is Kind.CCV and passes[r.seq] for r in reruns)
+            and immediate(check, reruns[-1])
+        ):
+            found[check.seq] = reruns
+    return found

@@ -24,6 +24,7 @@ _KIND_NAMES = {
     Kind.MS: "matrix spike",
     Kind.MSD: "matrix spike duplicate",
     Kind.ADDITION: "standard-addition point",
+    Kind.LLCCV: "low-level CCV",
 }
 
 

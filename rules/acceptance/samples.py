@@ -18,6 +18,7 @@ from calwarden.rules.acceptance.common import (
     span,
     within,
 )
+from calwarden.rules.acceptance.reporting import has_reporting_limits, reporting_limit
 from calwarden.rules.model import REPORTABLE_KINDS, Kind, Reading
 from calwarden.rules.rule import AnalyteContext, rule
 from calwarden.rules.verdict import Finding, Flag, Result, Severity
@@ -170,15 +171,21 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
     below the limit, not as a number (common practice). A warning: the run
     does not fail. Judged like ``range.over``. A CCB or method blank under the
     bottom of an upward quadratic has no concentration either: an info finding.
+    A result below its reporting limit (``reporting.limit``) is reported as
+    "< RL", not as an estimate, so it is not warned about here.
 
     Warns: S-03 Pb at 0.21 µg/L with a lowest standard of 0.5 µg/L. Passes:
-    S-03 Pb at 2.4 µg/L.
+    S-03 Pb at 2.4 µg/L, or at 0.21 µg/L with a reporting limit of 1 µg/L.
     """
     calibration = context.calibration
     if calibration is None or calibration.range_low is None:
         return
     low = calibration.range_low
+    limits = has_reporting_limits(context)
     for reading, measured in quantitated_field_results(context):
+        limit = reporting_limit(context, reading) if limits else None
+        if limit is not None and measured * reading.dilution < limit:
+            continue  # reported as "< RL": reporting.limit's
         if measured < low:
             yield reading_finding(
                 "range.under",
@@ -193,6 +200,8 @@ def range_under(context: AnalyteContext) -> Iterator[Finding]:
                 flag=Flag.BELOW_RANGE,
             )
     for reading, result, below in off_curve_results(context):
+        if limits and reporting_limit(context, reading) is not None:
+            continue  # under the curve's bottom, so below the limit: reported as "< RL"
         if below and reading.kind in REPORTABLE_KINDS:
             yield reading_finding(
                 "range.under",
@@ -358,8 +367,10 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
     6010D / 6020B: RPD ≤ 20 % [memory]). Near the quantitation limit RPDs are
     large by nature, so the rule applies only when both results are at least
     5× the lowest standard (common practice). A missing parent is a warning:
-    the precision is then not shown. Settings: ``duplicate_max_rpd_pct`` (20),
-    ``duplicate_min_multiple`` (5).
+    the precision is then not shown. With a reporting limit, the 5× is of the
+    parent's reporting limit (dilution applied), and below it
+    ``duplicate.near_limit`` judges the difference instead. Settings:
+    ``duplicate_max_rpd_pct`` (20), ``duplicate_min_multiple`` (5).
 
     Fails: S-05-D Pb 14.2 µg/L against S-05 at 10.1 µg/L (RPD 33.7 %). Passes:
     10.4 against 10.1 (RPD 2.9 %).
@@ -386,11 +397,16 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
         if duplicate is None or duplicate.measured is None or parent.measured is None:
             yield _not_judged("duplicate.rpd", context, reading, "a result cannot be quantitated")
             continue
-        if (
-            low is None
-            or duplicate.concentration is None
-            or parent.concentration is None
-            or min(duplicate.measured, parent.measured) < criteria.duplicate_min_multiple * low
+        if duplicate.concentration is None or parent.concentration is None:
+            yield _not_judged("duplicate.rpd", context, reading, "a result cannot be computed")
+            continue
+        smaller = min(duplicate.concentration, parent.concentration)
+        limit = reporting_limit(context, native[0])
+        if limit is not None:
+            if smaller < criteria.duplicate_min_multiple * limit:
+                continue  # near the reporting limit: duplicate.near_limit judges the difference
+        elif low is None or min(duplicate.measured, parent.measured) < (
+            criteria.duplicate_min_multiple * low
         ):
             yield _not_judged(
                 "duplicate.rpd",
