@@ -19,7 +19,9 @@ from calwarden.rules.acceptance import (
     brackets,
     calibration,
     checks,
+    chromatography,
     coverage,
+    interference,
     replicates,
     samples,
 )
@@ -43,6 +45,8 @@ RULES: tuple[Rule, ...] = (
     coverage.run_required_qc,
     blanks.blank_contamination,
     samples.istd_recovery,
+    # the ICP methods' interference check (issue 15)
+    interference.ics_recovery,
     # what the sequence and failed QC mean for the samples
     brackets.bracket_frequency,
     brackets.bracket_closing,
@@ -60,6 +64,11 @@ RULES: tuple[Rule, ...] = (
     samples.spike_recovery,
     samples.spike_rpd,
     additions.addition_fit,
+    # metals matrix checks, chromatographic and mass-spectrometric identity (issue 15)
+    interference.serial_dilution_difference,
+    interference.pds_recovery,
+    chromatography.rt_window,
+    chromatography.ion_ratio,
     # what the run holds at all
     coverage.run_field_samples,
 )

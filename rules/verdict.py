@@ -44,6 +44,9 @@ class Flag(StrEnum):
     LCS_FAILED = "lcs_failed"  # the LCS of its preparation batch failed
     BEYOND_INTERVAL = "beyond_interval"  # more field samples than allowed since the last check
     NOT_COMPUTABLE = "not_computable"  # a number of its result overflowed or is undefined
+    # --- issue 15: metals QC of the ICP methods, chromatography, mass spectrometry
+    MATRIX_EFFECT = "matrix_effect"  # its serial dilution or post-digestion spike failed
+    IDENTITY_UNCONFIRMED = "identity_unconfirmed"  # retention time or ion ratio out of limits
 
 
 #: Flags that make a field sample's result unreportable: it goes on the re-run list.
@@ -62,6 +65,8 @@ RERUN_FLAGS = frozenset(
         Flag.LCS_FAILED,
         Flag.BEYOND_INTERVAL,
         Flag.NOT_COMPUTABLE,
+        Flag.MATRIX_EFFECT,
+        Flag.IDENTITY_UNCONFIRMED,
     }
 )
 

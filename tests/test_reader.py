@@ -212,7 +212,7 @@ def test_exported_constants() -> None:
     assert MAX_FILE_BYTES == 200 * 1024 * 1024
     assert REQUIRED_FIELDS == ("seq", "sample_id", "kind", "analyte", "response")
     assert NATIVE_FIELDS[:5] == REQUIRED_FIELDS
-    assert len(NATIVE_FIELDS) == 16
+    assert len(NATIVE_FIELDS) == 19
 
 
 # --------------------------------------------------------------------------- bad files

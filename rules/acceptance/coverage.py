@@ -24,6 +24,10 @@ _KIND_NAMES = {
     Kind.MS: "matrix spike",
     Kind.MSD: "matrix spike duplicate",
     Kind.ADDITION: "standard-addition point",
+    Kind.ICS_A: "ICS-A",
+    Kind.ICS_AB: "ICS-AB",
+    Kind.SERIAL_DILUTION: "serial dilution",
+    Kind.PDS: "post-digestion spike",
 }
 
 
