@@ -128,6 +128,43 @@ class AnalyteCriteria(_Frozen):
             if not own.strip() or len(own) > 8:
                 raise ValueError(f"qualifier_letters.{letter}: 1 to 8 characters, not {own!r}")
         return value
+    # --- metals QC of the ICP methods (issue 15 items 3-4; rules/acceptance/interference.py)
+    # ICS-A / ICS-AB: interferents and spiked analytes within ±20 % of their true values
+    # (US EPA 6010D and 200.7; 6020B likewise [memory]).
+    ics_recovery_pct: Range = (80.0, 120.0)
+    # Analytes not spiked in an ICS: |result| at most this; None = the lowest standard, the
+    # run's stand-in for the lower limit of quantitation (6010D / 6020B: < LLOQ [memory]).
+    ics_unspiked_limit: float | None = Field(default=None, gt=0)
+    # Serial dilution: the diluted result within 10 % of the undiluted one (200.7 and the US
+    # EPA CLP inorganic statement of work: 10 %; 6010D / 6020B: 20 % [memory]) ...
+    serial_dilution_max_difference_pct: float = Field(default=10.0, gt=0)
+    # ... judged only when the undiluted result in the measured solution is at least this
+    # multiple of the calibration's detection limit (CLP: 50× the MDL [memory]).
+    serial_dilution_min_multiple: float = Field(default=50.0, ge=0)
+    # Post-digestion spike recovery (6010D / 6020B: 80–120 % [memory]).
+    pds_recovery_pct: Range = (80.0, 120.0)
+    # A failing matrix spike asks for a post-digestion spike of its parent (6010D / 6020B
+    # [memory]); off by default, the metals presets switch it on.
+    pds_after_failed_spike: bool = False
+    # --- chromatography (issue 15 item 5; rules/acceptance/chromatography.py)
+    # Retention time within ± this many minutes of the reference (SANTE/11312/2021 ±0.1 min
+    # [memory]); None: absolute windows off.
+    rt_window_min: float | None = Field(default=0.1, gt=0)
+    # Relative retention time (analyte over internal standard) within ± this percent of the
+    # reference's (Commission Decision 2002/657/EC: GC 0.5 %, LC 2.5 % [memory]); None: off.
+    rrt_window_pct: float | None = Field(default=None, gt=0)
+    # The reference retention time: the calibration standards' mean, or the check standard
+    # (ICV or CCV) acquired last before the reading (US EPA 8000D: the day's
+    # windows centred on the opening check [memory]).
+    rt_reference: Literal["calibration", "check"] = "calibration"
+    # --- mass-spectrometric confirmation (issue 15 item 6)
+    # Ion ratio (qualifier over quantifier) against the standards' mean: None = graded by the
+    # ratio's size as 2002/657/EC Table 4 (±20 % above 50 %, ±25 % 20–50 %, ±30 % 10–20 %,
+    # ±50 % ≤ 10 %, relative [memory]); a number = one relative tolerance for every size
+    # (SANTE/11312/2021: ±30 % [memory]).
+    ion_ratio_tolerance_pct: float | None = Field(default=None, gt=0)
+    # Which column of 2002/657/EC Table 4 grades the tolerance [memory].
+    ion_ratio_technique: Literal["lc_ms", "gc_ei_ms"] = "lc_ms"
 
     @field_validator("required_qc")
     @classmethod

@@ -58,6 +58,7 @@ FINDING_STAGES: dict[str, int] = {
     "blank": 1,
     "lcs": 1,
     "istd": 1,
+    "ics": 1,  # the interference check verifies the corrections, as a check standard does
     "run.required_qc": 1,  # missing QC explains the rest; run.field_samples comes last
     "bracket": 2,
     # consequences: a failed blank or LCS carried to the samples, whatever the prefix

@@ -34,16 +34,23 @@ class Kind(StrEnum):
     ADDITION = "addition"  # one point of a standard-addition series of ``parent``
     # --- issue 15, reporting limits (rules/acceptance/reporting.py)
     LLCCV = "llccv"  # low-level calibration verification at the reporting limit
+    # --- metals QC of the ICP methods (US EPA 6010D / 6020B, 200.7) [memory]
+    ICS_A = "ics_a"  # interference check solution A: the interferents alone
+    ICS_AB = "ics_ab"  # interference check solution AB: the interferents and spiked analytes
+    SERIAL_DILUTION = "serial_dilution"  # ``parent`` diluted further (its ``dilution``, e.g. 5)
+    PDS = "pds"  # post-digestion spike: ``added`` spiked into ``parent``'s digestate
 
 
 #: Kinds that must carry a known concentration.
 NEEDS_NOMINAL = frozenset({Kind.CAL, Kind.ICV, Kind.CCV, Kind.LCS, Kind.LLCCV})
 #: Kinds that must name the native sample they were made from.
-NEEDS_PARENT = frozenset({Kind.DUP, Kind.MS, Kind.MSD, Kind.ADDITION})
+NEEDS_PARENT = frozenset(
+    {Kind.DUP, Kind.MS, Kind.MSD, Kind.ADDITION, Kind.SERIAL_DILUTION, Kind.PDS}
+)
 #: Kinds that must say how much was added.
-NEEDS_ADDED = frozenset({Kind.MS, Kind.MSD, Kind.ADDITION})
+NEEDS_ADDED = frozenset({Kind.MS, Kind.MSD, Kind.ADDITION, Kind.PDS})
 #: Matrix spikes: their ``added`` is the spiked concentration, so it must be positive.
-SPIKE_KINDS = frozenset({Kind.MS, Kind.MSD})
+SPIKE_KINDS = frozenset({Kind.MS, Kind.MSD, Kind.PDS})
 #: Check standards: they open and close brackets.
 CHECK_KINDS = frozenset({Kind.ICV, Kind.CCV})
 #: Field samples: what brackets protect and what the frequency rule counts.
@@ -53,6 +60,9 @@ REPORTABLE_KINDS = frozenset({Kind.SAMPLE, Kind.DUP, Kind.MS, Kind.MSD, Kind.LCS
 
 
 _NUMERIC_COLUMNS = ("response", "nominal", "istd_response", "dilution", "added", "reporting_limit")
+#: Chromatography and mass-spectrometry columns (retention times in minutes, any unit
+#: one run keeps; the qualifier ion's response beside the quantifier's ``response``).
+CHROMATOGRAPHY_COLUMNS = ("retention_time", "istd_retention_time", "qualifier_response")
 
 
 def _require_finite(value: float | None, line: int, column: str) -> None:
@@ -84,6 +94,10 @@ class Reading:
     # --- issue 15, reporting limits and standards' sources (rules/acceptance/reporting.py)
     reporting_limit: float | None = None  # before dilution; the row's own, over the setting's
     source: str | None = None  # where a standard came from (maker, lot): the ICV's must differ
+    # --- chromatography and mass spectrometry (rt.window, ion.ratio)
+    retention_time: float | None = None
+    istd_retention_time: float | None = None
+    qualifier_response: float | None = None
 
     def __post_init__(self) -> None:
         if not self.sample_id:
@@ -98,6 +112,12 @@ class Reading:
         if not math.isfinite(total):
             for column in _NUMERIC_COLUMNS:
                 _require_finite(getattr(self, column), self.line, column)
+        if (
+            self.retention_time is not None
+            or self.istd_retention_time is not None
+            or self.qualifier_response is not None
+        ):
+            self._check_chromatography()
         if self.dilution <= 0:
             raise InputError(
                 f"dilution must be greater than zero, got {self.dilution:g}", self.line, "dilution"
@@ -132,6 +152,13 @@ class Reading:
                 self.line,
                 "istd_response",
             )
+
+    def _check_chromatography(self) -> None:
+        for column in CHROMATOGRAPHY_COLUMNS:
+            value = getattr(self, column)
+            _require_finite(value, self.line, column)
+            if value is not None and value < 0:
+                raise InputError(f"{column} must not be negative, got {value:g}", self.line, column)
 
     @property
     def signal(self) -> float:

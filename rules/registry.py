@@ -20,7 +20,9 @@ from calwarden.rules.acceptance import (
     calibration,
     carryover,
     checks,
+    chromatography,
     coverage,
+    interference,
     replicates,
     reporting,
     reruns,
@@ -51,6 +53,8 @@ RULES: tuple[Rule, ...] = (
     coverage.run_required_qc,
     blanks.blank_contamination,
     samples.istd_recovery,
+    # the ICP methods' interference check (issue 15)
+    interference.ics_recovery,
     # what the sequence and failed QC mean for the samples
     brackets.bracket_frequency,
     brackets.bracket_closing,
@@ -74,6 +78,11 @@ RULES: tuple[Rule, ...] = (
     carryover.carryover_wash_blank,  # issue 15
     # issue 15: reporting limits and qualifiers
     reporting.reporting_limit_rule,
+    # metals matrix checks, chromatographic and mass-spectrometric identity (issue 15)
+    interference.serial_dilution_difference,
+    interference.pds_recovery,
+    chromatography.rt_window,
+    chromatography.ion_ratio,
     # what the run holds at all
     coverage.run_field_samples,
 )

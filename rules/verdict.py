@@ -47,6 +47,9 @@ class Flag(StrEnum):
     # --- issue 15 (rules/acceptance/reporting.py, carryover.py)
     LOW_CHECK_FAILED = "low_check_failed"  # a low result next to a failing low-level check
     CARRYOVER = "carryover"  # right after a result above the top standard: carry-over suspected
+    # --- issue 15: metals QC of the ICP methods, chromatography, mass spectrometry
+    MATRIX_EFFECT = "matrix_effect"  # its serial dilution or post-digestion spike failed
+    IDENTITY_UNCONFIRMED = "identity_unconfirmed"  # retention time or ion ratio out of limits
 
 
 #: Flags that make a field sample's result unreportable: it goes on the re-run list.
@@ -67,6 +70,8 @@ RERUN_FLAGS = frozenset(
         Flag.NOT_COMPUTABLE,
         Flag.LOW_CHECK_FAILED,
         Flag.CARRYOVER,
+        Flag.MATRIX_EFFECT,
+        Flag.IDENTITY_UNCONFIRMED,
     }
 )
 

@@ -48,3 +48,17 @@ def test_exports_are_up_to_date_with_the_native_fixtures() -> None:
         check=False,
     )
     assert result.returncode == 0, result.stdout + result.stderr
+
+
+def test_an_export_maps_retention_times_with_its_decimal_comma() -> None:
+    """A layout maps an export's retention-time column, its decimal commas converted."""
+    from calwarden.daemon.parsing.exports import export_table
+    from calwarden.daemon.parsing.native import normalise
+    from calwarden.daemon.settings.formats import ExportFormat
+
+    fmt = ExportFormat.model_validate(
+        {"decimal": ",", "delimiter": ";", "columns": {"retention_time": "RT (min)"}}
+    )
+    data = b"seq;sample_id;kind;analyte;response;RT (min)\n1;S-1;sample;Zn;10;6,21\n"
+    table, _ = export_table(data, fmt)
+    assert normalise(table).readings[0].retention_time == 6.21

@@ -212,7 +212,7 @@ def test_exported_constants() -> None:
     assert MAX_FILE_BYTES == 200 * 1024 * 1024
     assert REQUIRED_FIELDS == ("seq", "sample_id", "kind", "analyte", "response")
     assert NATIVE_FIELDS[:5] == REQUIRED_FIELDS
-    assert len(NATIVE_FIELDS) == 18  # issue 15: reporting_limit, source
+    assert len(NATIVE_FIELDS) == 21  # issue 15: reporting_limit, source; 3 chromatography
 
 
 # --------------------------------------------------------------------------- bad files
@@ -375,3 +375,41 @@ def test_a_cell_quoted_in_a_message_is_short_and_escaped() -> None:
         normalise(decode_table(data))
     assert "\x1b" not in str(caught.value)
     assert "got '\\x1b[31m" + "x" * 35 + "…'" in str(caught.value)
+
+
+def test_chromatography_columns_are_read() -> None:
+    """Retention times and the qualifier response are read; an empty cell means not given."""
+    text = (
+        b"seq,sample_id,kind,analyte,response,retention_time,istd_retention_time,"
+        b"qualifier_response\n1,S-1,sample,Atrazine,1000,6.21,5.10,520\n2,S-2,sample,Atrazine,9,,,\n"
+    )
+    first, second = normalise(decode_table(text)).readings
+    assert (first.retention_time, first.istd_retention_time, first.qualifier_response) == (
+        6.21,
+        5.10,
+        520.0,
+    )
+    assert (second.retention_time, second.qualifier_response) == (None, None)
+
+
+@pytest.mark.parametrize(
+    ("cell", "phrase"),
+    [("six", "must be a number"), ("-0.5", "must not be negative"), ("nan", "finite")],
+)
+def test_a_bad_retention_time_names_its_line_and_column(cell: str, phrase: str) -> None:
+    """A retention time that is no finite, non-negative number is refused, naming the cell."""
+    text = f"seq,sample_id,kind,analyte,response,retention_time\n1,S-1,sample,Zn,10,{cell}\n"
+    with pytest.raises(InputError, match=phrase) as caught:
+        normalise(decode_table(text.encode()))
+    assert (caught.value.line, caught.value.column) == (2, "retention_time")
+
+
+def test_new_qc_kinds_need_their_parent_and_spike() -> None:
+    """A serial dilution needs its parent, a post-digestion spike its parent and `added`."""
+    header = "seq,sample_id,kind,analyte,response,parent,added\n"
+    with pytest.raises(InputError, match="parent"):
+        normalise(decode_table((header + "1,S-1-SD,serial_dilution,Zn,10,,\n").encode()))
+    with pytest.raises(InputError, match="amount added"):
+        normalise(decode_table((header + "1,S-1-PDS,pds,Zn,10,S-1,\n").encode()))
+    run = normalise(decode_table((header + "1,ICS-A,ICS_A,Zn,10,,\n").encode()))
+    assert run.readings[0].kind is Kind.ICS_A

@@ -292,6 +292,8 @@ _WHY = {
     "lcs_failed": "the LCS of its batch failed",
     "beyond_interval": "run after more samples than allowed since a check standard",
     "not_computable": "its result cannot be computed",
+    "matrix_effect": "its serial dilution or post-digestion spike shows a matrix effect",
+    "identity_unconfirmed": "its retention time or ion ratio does not confirm the analyte",
     "qc_failed": "its QC comparison failed (measure it again)",
     "low_check_failed": "a low-level check next to it failed",
     "carryover": "right after a result above the top standard (carry-over)",

@@ -15,7 +15,7 @@ import re
 import sys
 from collections.abc import Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING, NamedTuple
+from typing import TYPE_CHECKING, Any, NamedTuple
 
 if TYPE_CHECKING:
     from calwarden.daemon.settings.config import AppConfig
@@ -89,6 +89,9 @@ def _parser() -> argparse.ArgumentParser:
     config_check.add_argument("file", type=Path, help="the YAML configuration")
     config_commands.add_parser(
         "schema", help="print the configuration's JSON Schema (for editors' YAML completion)"
+    )
+    config_commands.add_parser(
+        "presets", help="list the method presets and check each (exit 0 all valid, 2 not)"
     )
 
     watch = commands.add_parser(
@@ -167,6 +170,9 @@ def _parser() -> argparse.ArgumentParser:
 
     listing = commands.add_parser("rules", help="list every acceptance rule with its defaults")
     listing.add_argument("--config", type=Path, help="show the limits of this configuration")
+    listing.add_argument(
+        "--preset", help="show the limits of this method preset (over --config's criteria)"
+    )
     listing.add_argument("rule", nargs="?", help="explain one rule in full")
     return parser
 
@@ -260,12 +266,19 @@ def _config(args: argparse.Namespace) -> int:
         schema["title"] = "calwarden configuration"
         print(json.dumps(schema, indent=2, ensure_ascii=False))
         return EXIT_PASS
+    if args.config_command == "presets":
+        return _presets()
     if args.config_command != "check":
-        print("calwarden: say `config check FILE` or `config schema`", file=sys.stderr)
+        print(
+            "calwarden: say `config check FILE`, `config schema` or `config presets`",
+            file=sys.stderr,
+        )
         return EXIT_ERROR
     config = _load_config_or_say_why(args.file)
     if config is None:
         return EXIT_ERROR
+    if config.preset:
+        print(f"preset: {config.preset} (its criteria under this file's own)")
     overrides = len(config.criteria.analytes)
     layout = "an export format" if config.format else "the native CSV format"
     inboxes = f", {len(config.inboxes)} inbox(es)" if config.inboxes else ""
@@ -283,6 +296,83 @@ def _config(args: argparse.Namespace) -> int:
     else:
         print("alerts: written as .eml files in <state>/outbox/ only (no alerts.email.host)")
     return EXIT_PASS
+
+
+def _presets() -> int:
+    """List the presets that come with calwarden, each checked; 2 when one is broken."""
+    from calwarden.daemon.settings.presets import PRESETS_DIR, load_preset, preset_names
+    from calwarden.rules.errors import ConfigError
+
+    names = preset_names()
+    if not names:
+        print(f"calwarden: no presets in {PRESETS_DIR}", file=sys.stderr)
+        return EXIT_ERROR
+    broken = 0
+    width = max(len(name) for name in names)
+    for name in names:
+        try:
+            preset = load_preset(name)
+        except ConfigError as error:
+            broken += 1
+            print(f"calwarden: {error}", file=sys.stderr)
+            continue
+        print(f"{name:<{width}}  {preset.title}: {preset.method}")
+    print(
+        "\n`preset: NAME` in a configuration uses one (its own criteria override the "
+        "preset's);\n`calwarden rules --preset NAME` shows its criteria and their sources. "
+        "Presets are starting\npoints to check against the lab's own method and "
+        "accreditation, not a substitute for them."
+    )
+    return EXIT_ERROR if broken else EXIT_PASS
+
+
+def _preset_config(args: argparse.Namespace) -> AppConfig | None:
+    """``--config``'s configuration with ``--preset`` in it, or ``None`` after saying why."""
+    from calwarden.daemon.settings.config import build_config, parse_yaml
+    from calwarden.rules.errors import ConfigError
+
+    try:
+        data: Any = {}
+        source, base = "--preset", None
+        if args.config is not None:
+            text = args.config.read_text(encoding="utf-8")
+            data = parse_yaml(text, str(args.config)) or {}
+            source, base = str(args.config), args.config.parent
+        if not isinstance(data, dict):
+            return build_config(data, source, base)  # it names the mistake
+        return build_config({**data, "preset": args.preset}, source, base)
+    except (ConfigError, OSError, UnicodeDecodeError) as error:
+        print(f"calwarden: configuration error: {error}", file=sys.stderr)
+        return None
+
+
+def _preset_lines(name: str, base: Path | None) -> list[str]:
+    """The preset's criteria with their sources, for `calwarden rules --preset`."""
+    from calwarden.daemon.settings.presets import load_preset
+
+    preset = load_preset(name, base)
+    lines = ["", f"Preset {preset.name}: {preset.title} ({preset.method})"]
+    for item in preset.criteria:
+        lines.append(f"  {item.key}: {_setting_text(_preset_value(item.value))}")
+        lines.append(f"      source: {item.source}")
+    for item in preset.disabled_rules:
+        lines.append(f"  switched off: {item.key}")
+        lines.append(f"      source: {item.source}")
+    if preset.notes:
+        lines.append(f"  notes: {preset.notes}")
+    lines.append(
+        "  A starting point to check against the lab's own method and accreditation, "
+        "not a substitute for them."
+    )
+    return lines
+
+
+def _preset_value(value: object) -> object:
+    if isinstance(value, list):
+        return tuple(float(v) if isinstance(v, int) else v for v in value)
+    if isinstance(value, dict):
+        return ", ".join(f"{k}: {v}" for k, v in value.items())
+    return value
 
 
 class _Listed(NamedTuple):
@@ -361,7 +451,7 @@ def _setting_text(value: object) -> str:
 def _rules(args: argparse.Namespace) -> int:
     import difflib
 
-    config = _load_config_or_say_why(args.config)
+    config = _preset_config(args) if args.preset else _load_config_or_say_why(args.config)
     if config is None:
         return EXIT_ERROR
     rules = _listed_rules(config)
@@ -387,6 +477,9 @@ def _rules(args: argparse.Namespace) -> int:
         state = f"  ({rule.state})" if rule.state else ""
         print(f"{rule.id:<{width}}  {rule.summary}{state}")
     print("\n`calwarden rules RULE` explains one rule: why, its settings and examples.")
+    if args.preset:
+        for line in _preset_lines(args.preset, args.config.parent if args.config else None):
+            print(line)
     return EXIT_PASS
 
 

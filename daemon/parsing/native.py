@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import hashlib
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from operator import itemgetter
@@ -32,7 +32,7 @@ from pathlib import Path
 from calwarden.daemon.parsing.decode import MAX_FILE_BYTES, decode, excerpt, read_file_bytes
 from calwarden.daemon.parsing.table import RawTable, closest_column, header_key, split_table
 from calwarden.rules.errors import ConfigError, InputError
-from calwarden.rules.model import Kind, Reading, Run
+from calwarden.rules.model import CHROMATOGRAPHY_COLUMNS, Kind, Reading, Run
 
 __all__ = [
     "ALLOWED_KINDS",
@@ -68,11 +68,24 @@ OPTIONAL_FIELDS: tuple[str, ...] = (
     "reporting_limit",
     "source",
 )
+#: Chromatography and mass-spectrometry columns (rt.window, ion.ratio): read by a block of
+#: their own, only when a file has them, so the common path stays as fast as before.
+CHROMATOGRAPHY_FIELDS: tuple[str, ...] = CHROMATOGRAPHY_COLUMNS
+#: The columns the main row path unpacks, in this order.
+_CORE_FIELDS: tuple[str, ...] = REQUIRED_FIELDS + OPTIONAL_FIELDS
 #: Every column the native format knows, required first.
-NATIVE_FIELDS: tuple[str, ...] = REQUIRED_FIELDS + OPTIONAL_FIELDS
+NATIVE_FIELDS: tuple[str, ...] = _CORE_FIELDS + CHROMATOGRAPHY_FIELDS
 #: Native fields whose cells are decimal numbers (``seq`` is a whole one).
 NUMBER_FIELDS = frozenset(
-    {"response", "nominal", "istd_response", "dilution", "added", "reporting_limit"}
+    {
+        "response",
+        "nominal",
+        "istd_response",
+        "dilution",
+        "added",
+        "reporting_limit",
+        *CHROMATOGRAPHY_FIELDS,
+    }
 )
 
 #: The largest seq: every JSON reader holds it exactly (a double's whole numbers end at
@@ -227,7 +240,8 @@ def normalise(
     width = len(table.header)
     # One C-level call picks every native field of a row, in NATIVE_FIELDS order; a
     # field the file lacks points one past the row, at the empty padding cell.
-    pick = itemgetter(*(col.get(field, width) for field in NATIVE_FIELDS))
+    pick = itemgetter(*(col.get(field, width) for field in _CORE_FIELDS))
+    chromatography = [(field, col[field]) for field in CHROMATOGRAPHY_FIELDS if field in col]
     pad = ("",)
     strip = str.strip
     kinds = KIND_WORDS
@@ -263,6 +277,7 @@ def normalise(
             raise InputError("the row cannot be read", line) from None  # pragma: no cover
         if v_seq < 0 or v_seq > MAX_SEQ or "_" in numbers or not numbers.isascii():
             _check_cells(cells, line)
+        timing = _chromatography(row.fields, chromatography, line) if chromatography else _NONE3
         try:
             reading = Reading(
                 line=line,
@@ -284,6 +299,9 @@ def normalise(
                 batch=batch or None,
                 reporting_limit=v_reporting_limit,
                 source=source or None,
+                retention_time=timing[0],
+                istd_retention_time=timing[1],
+                qualifier_response=timing[2],
             )
         except InputError:
             # A number the fast path let through (nan, inf, 1e999) gets the precise message.
@@ -296,9 +314,26 @@ def normalise(
     return Run.of(readings, None if named else run_name)
 
 
+_Three = tuple[float | None, float | None, float | None]
+_NONE3: _Three = (None, None, None)
+
+
+def _chromatography(fields: Sequence[str], columns: Sequence[tuple[str, int]], line: int) -> _Three:
+    """The row's retention time, ISTD retention time and qualifier response, read strictly."""
+    values: dict[str, float | None] = {}
+    for field, index in columns:
+        text = fields[index].strip()
+        values[field] = _number(text, line, field) if text else None
+    return (
+        values.get("retention_time"),
+        values.get("istd_retention_time"),
+        values.get("qualifier_response"),
+    )
+
+
 def _check_cells(cells: tuple[str, ...], line: int) -> None:
     """Apply the strict cell rules one by one, raising InputError for the first broken cell."""
-    for field, text in zip(NATIVE_FIELDS, cells, strict=True):
+    for field, text in zip(_CORE_FIELDS, cells, strict=True):
         if field == "seq":
             _seq(text, line)
         elif field == "kind":

@@ -35,6 +35,7 @@ from calwarden.daemon.settings.formats import (
     NominalSection,
     WideSection,
 )
+from calwarden.daemon.settings.presets import with_preset
 from calwarden.daemon.settings.watch import InboxSettings, WatchSettings, merge_criteria
 from calwarden.rules.criteria import AnalyteCriteria, Criteria
 from calwarden.rules.errors import ConfigError
@@ -46,6 +47,11 @@ class AppConfig(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
+    preset: str | None = Field(
+        default=None,
+        description="a method preset (`calwarden config presets` lists them) or a preset "
+        "file's path: its criteria, each with its source, under this file's own criteria",
+    )
     criteria: Criteria = Field(default_factory=Criteria)
     format: ExportFormat | None = Field(
         default=None,
@@ -166,14 +172,18 @@ def describe_validation_error(error: ValidationError) -> str:
     return f"{where}: {message}" if where else message
 
 
-def build_config(data: Any, source: str) -> AppConfig:
-    """Validate parsed YAML as a configuration."""
+def build_config(data: Any, source: str, base: Path | None = None) -> AppConfig:
+    """Validate parsed YAML as a configuration (``base``: the folder preset paths start from)."""
     if data is None:
         data = {}
     if not isinstance(data, dict):
         raise ConfigError(
             f"{source}: the configuration must be a mapping of keys, not {type(data).__name__}"
         )
+    try:
+        data = with_preset(data, base)  # the preset's criteria under the file's own
+    except ConfigError as error:
+        raise ConfigError(f"{source}: {error}") from None
     inboxes = data.get("inboxes")
     if isinstance(inboxes, list) and isinstance(data.get("criteria"), dict):
         # An inbox's criteria are laid over the top-level ones before validation,
@@ -212,7 +222,7 @@ def load_config(path: Path | None) -> AppConfig:
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as error:
         raise ConfigError(f"{path}: cannot read the configuration: {error}") from None
-    return build_config(parse_yaml(text, str(path)), str(path))
+    return build_config(parse_yaml(text, str(path)), str(path), path.parent)
 
 
 # --------------------------------------------------------------------------- the watch plan

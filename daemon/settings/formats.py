@@ -24,6 +24,8 @@ MAPPABLE_FIELDS = (
     "seq", "sample_id", "kind", "analyte", "response", "nominal", "istd", "istd_response",
     "dilution", "unit", "acquired", "parent", "added", "run", "instrument", "batch",
     "reporting_limit", "source",
+    # chromatography and mass spectrometry (rt.window, ion.ratio)
+    "retention_time", "istd_retention_time", "qualifier_response",
 )  # fmt: skip
 
 

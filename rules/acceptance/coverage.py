@@ -25,6 +25,10 @@ _KIND_NAMES = {
     Kind.MSD: "matrix spike duplicate",
     Kind.ADDITION: "standard-addition point",
     Kind.LLCCV: "low-level CCV",
+    Kind.ICS_A: "ICS-A",
+    Kind.ICS_AB: "ICS-AB",
+    Kind.SERIAL_DILUTION: "serial dilution",
+    Kind.PDS: "post-digestion spike",
 }
 
 
