@@ -157,12 +157,13 @@ def test_temporary_name_renamed_into_place_is_judged_by_its_new_name(
     assert outcome.sha256 == sha256(PASSING)
     assert {o.path for o in running.outcomes} == {"sentinel.csv", "run.csv"}
     assert not [e for e in events if temporary in str(e.get("path", ""))]
-    suffixes = (".verdict.json", ".report.txt", ".flagged.csv")
+    suffixes = (".verdict.json", ".report.txt", ".report.html", ".flagged.csv")
     expected = {
         ".calwarden",
+        "sentinel.reruns.csv",  # it fails
         *(stem + suffix for stem in ("run", "sentinel") for suffix in suffixes),
     }
-    assert {p.name for p in out.iterdir()} == expected
+    assert {p.name for p in out.iterdir()} - {"index.html"} == expected
     ledger = open_ledger(plan)
     try:
         assert ledger.files.seen(plan.inboxes[0].name, temporary) is None

@@ -191,7 +191,13 @@ def _check(args: argparse.Namespace) -> int:
     if args.out is not None:
         try:
             write_outputs(
-                args.out, fitting_stem(args.file.stem), document, judgement.table, judgement.verdict
+                args.out,
+                fitting_stem(args.file.stem),
+                document,
+                judgement.table,
+                judgement.verdict,
+                worklist=config.worklist,
+                checks_every=config.criteria.defaults.max_field_samples_between_checks,
             )
         except OSError as error:
             print(f"calwarden: cannot write to {args.out}: {error}", file=sys.stderr)
@@ -203,7 +209,7 @@ def _check(args: argparse.Namespace) -> int:
     else:
         print(render(document, full=False), end="")
         if args.out is not None:
-            print(f"\nverdict, flagged copy and report written to {args.out}")
+            print(f"\nverdict, flagged copy, reports and any re-run worklist written to {args.out}")
     return {"pass": EXIT_PASS, "fail": EXIT_FAIL}.get(document["status"], EXIT_ERROR)
 
 
