@@ -232,5 +232,5 @@ def is_leftover_temporary(name: str) -> bool:
     return (
         name.startswith(".")
         and name.endswith(".tmp")
-        and any(f"{suffix}." in name for suffix in (*OUTPUT_SUFFIXES, ".png"))
+        and any(f"{suffix}." in name for suffix in (*OUTPUT_SUFFIXES, ".png", "index.html"))
     )
