@@ -120,6 +120,9 @@ def _parser() -> argparse.ArgumentParser:
     status = commands.add_parser("status", help="what the daemon has done, from its ledger")
     status.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
     status.add_argument("--config", type=Path, help="or: the daemon's configuration")
+    status.add_argument(
+        "--json", action="store_true", help="print the status as JSON (keys in the README)"
+    )
 
     alert = commands.add_parser("alert", help="check that alerts reach their recipients")
     alert_commands = alert.add_subparsers(dest="alert_command", metavar="ACTION")
@@ -472,13 +475,17 @@ def _daemon_folders(args: argparse.Namespace) -> tuple[Path, Path, AppConfig] | 
 
 
 def _status(args: argparse.Namespace) -> int:
-    from calwarden.daemon.cli.status import status_report
+    from calwarden.daemon.cli.status import status_document, status_report
 
     folders = _daemon_folders(args)
     if folders is None:
         return EXIT_ERROR
-    _, state_dir, _ = folders
-    text, found = status_report(state_dir)
+    out, state_dir, _ = folders
+    if args.json:
+        document = status_document(state_dir, out)
+        print(json.dumps(document, indent=2, ensure_ascii=False))
+        return EXIT_PASS if document["ledger"] else EXIT_ERROR
+    text, found = status_report(state_dir, out)
     print(text, end="")
     return EXIT_PASS if found else EXIT_ERROR
 
