@@ -299,3 +299,14 @@ def test_overview_in_a_real_browser(tmp_path: Path) -> None:
     assert "Failures not yet reviewed (1)" in dom and "bwl-metals-fail.report.html" in dom
     assert (out / "bwl-metals-fail.report.html").exists()  # the link leads somewhere
     assert shot.stat().st_size > 5_000
+
+
+def test_fail_verdicts_are_logged_at_warning_level(tmp_path: Path) -> None:
+    """file_evaluated is a warning for a failing run and info for a passing one."""
+    from structlog.testing import capture_logs
+
+    with capture_logs() as logs:
+        _, ledger = _ledger_with_runs(tmp_path)
+        ledger.close()
+    levels = {e["path"]: e["log_level"] for e in logs if e["event"] == "file_evaluated"}
+    assert levels == {"bwl-metals-fail.csv": "warning", "bwl-metals-pass.csv": "info"}

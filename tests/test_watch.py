@@ -352,7 +352,9 @@ def test_deleting_a_judged_file_keeps_its_verdict(
     running = start(plan)
     (inbox / "run.csv").write_bytes(PASSING)
     running.wait_path("run.csv")
-    outputs = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
+    outputs = {  # the overview page changes with every file
+        p.name: p.read_bytes() for p in out.iterdir() if p.is_file() and p.name != "index.html"
+    }
     count = len(events)
     (inbox / "run.csv").unlink()
     (inbox / "sentinel.csv").write_bytes(FAILING)  # its events come after the delete's
