@@ -502,6 +502,15 @@ def test_demo_prints_the_summary(demo_runs: DemoRuns) -> None:
     assert f"calwarden status --out {demo_runs.folder.resolve() / 'out'}" in stdout
 
 
+def test_demo_leaves_the_overview_and_reports_with_their_pictures(demo_runs: DemoRuns) -> None:
+    """After the demo the overview links the failing run's HTML report, which names its status."""
+    out = demo_runs.folder / "out"
+    overview = (out / "index.html").read_text(encoding="utf-8")
+    assert "bwl-demo-1202-metals.report.html" in overview
+    report = (out / "bwl-demo-1202-metals.report.html").read_text(encoding="utf-8")
+    assert "✗ FAIL</span> CCV-2 Cu recovered 83.1 %" in report  # pictures: the second run has none
+
+
 def test_demo_writes_a_verdict_for_every_run(demo_runs: DemoRuns) -> None:
     """demo leaves each distinct run's verdict, with its status and its source's hash."""
     assert demo_runs.first_verdicts == {
