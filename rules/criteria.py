@@ -128,6 +128,7 @@ class AnalyteCriteria(_Frozen):
             if not own.strip() or len(own) > 8:
                 raise ValueError(f"qualifier_letters.{letter}: 1 to 8 characters, not {own!r}")
         return value
+
     # --- metals QC of the ICP methods (issue 15 items 3-4; rules/acceptance/interference.py)
     # ICS-A / ICS-AB: interferents and spiked analytes within ±20 % of their true values
     # (US EPA 6010D and 200.7; 6020B likewise [memory]).

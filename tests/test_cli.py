@@ -62,12 +62,14 @@ def test_summary_names_the_samples_to_rerun(capsys: pytest.CaptureFixture[str]) 
 
 
 def test_out_writes_verdict_flagged_copy_and_report(tmp_path: Path) -> None:
-    """--out writes the three files, and the flagged copy keeps every input row and column."""
+    """--out writes the five files, and the flagged copy keeps every input row and column."""
     main(["check", str(FAILING), "--out", str(tmp_path)])
     names = sorted(p.name for p in tmp_path.iterdir())
     assert names == [
         "bwl-metals-fail.flagged.csv",
+        "bwl-metals-fail.report.html",
         "bwl-metals-fail.report.txt",
+        "bwl-metals-fail.reruns.csv",
         "bwl-metals-fail.verdict.json",
     ]
     source = FAILING.read_text(encoding="utf-8").splitlines()

@@ -364,7 +364,7 @@ def test_an_output_folder_replaced_by_a_file_ends_watch_with_exit_3(
     daemon = spawn(inbox, "--out", out, "--config", config, "--settle", SETTLE, state_dir=state_dir)
     daemon.wait_started()
 
-    out.rmdir()
+    shutil.rmtree(out)  # it holds the overview page by now
     out.write_text("not a folder\n", encoding="utf-8")
     shutil.copyfile(PASSING, inbox / PASSING.name)
 
@@ -429,11 +429,12 @@ def test_outputs_are_readable_as_the_umask_allows(spawn: Spawn, folders: tuple[P
     daemon.wait_started()
     drop_and_wait(inbox, out, PASSING)
 
-    modes = {p.name: oct(p.stat().st_mode & 0o777) for p in out.iterdir() if p.is_file()}
+    files = [p for p in out.iterdir() if p.is_file() and "index.html" not in p.name]
+    modes = {p.name: oct(p.stat().st_mode & 0o777) for p in files}
 
     assert modes == {
         f"{PASSING.stem}{suffix}": "0o644"
-        for suffix in (".verdict.json", ".flagged.csv", ".report.txt")
+        for suffix in (".verdict.json", ".flagged.csv", ".report.txt", ".report.html")
     }
 
 
@@ -499,6 +500,15 @@ def test_demo_prints_the_summary(demo_runs: DemoRuns) -> None:
     stdout = demo_runs.first.stdout
     assert "7 files, 1 duplicate, 1 error, 1 fail, 4 pass." in stdout.splitlines()
     assert f"calwarden status --out {demo_runs.folder.resolve() / 'out'}" in stdout
+
+
+def test_demo_leaves_the_overview_and_reports_with_their_pictures(demo_runs: DemoRuns) -> None:
+    """After the demo the overview links the failing run's HTML report, which names its status."""
+    out = demo_runs.folder / "out"
+    overview = (out / "index.html").read_text(encoding="utf-8")
+    assert "bwl-demo-1202-metals.report.html" in overview
+    report = (out / "bwl-demo-1202-metals.report.html").read_text(encoding="utf-8")
+    assert "✗ FAIL</span> CCV-2 Cu recovered 83.1 %" in report  # pictures: the second run has none
 
 
 def test_demo_writes_a_verdict_for_every_run(demo_runs: DemoRuns) -> None:

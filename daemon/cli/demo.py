@@ -202,7 +202,9 @@ def run_demo(
     say(f"\n{len(DROPS)} files, {counts}.")
     say(f"  verdicts, flagged copies, reports: {out}")
     say(f"  ledger and JSON log:               {plan.state_dir} ({LOG_NAME})")
-    say(f"  the failing run's report:          {out / 'bwl-demo-1202-metals.report.txt'}")
+    say(f"  the failing run's report:          {out / 'bwl-demo-1202-metals.report.html'} (.txt)")
+    say(f"  its re-run worklist:               {out / 'bwl-demo-1202-metals.reruns.csv'}")
+    say(f"  the overview page (open it):       {out / 'index.html'}")
     say(f"  control charts (PNG):              {out / 'charts'}")
     outbox = plan.state_dir / OUTBOX_FOLDER
     alerts = sorted(outbox.glob("*.eml")) if outbox.is_dir() else []

@@ -122,6 +122,9 @@ def _parser() -> argparse.ArgumentParser:
     status = commands.add_parser("status", help="what the daemon has done, from its ledger")
     status.add_argument("--out", type=Path, help="the daemon's output folder (default: here)")
     status.add_argument("--config", type=Path, help="or: the daemon's configuration")
+    status.add_argument(
+        "--json", action="store_true", help="print the status as JSON (keys in the README)"
+    )
 
     alert = commands.add_parser("alert", help="check that alerts reach their recipients")
     alert_commands = alert.add_subparsers(dest="alert_command", metavar="ACTION")
@@ -202,7 +205,13 @@ def _check(args: argparse.Namespace) -> int:
 
         try:
             write_outputs(
-                args.out, fitting_stem(args.file.stem), document, judgement.table, judgement.verdict
+                args.out,
+                fitting_stem(args.file.stem),
+                document,
+                judgement.table,
+                judgement.verdict,
+                worklist=config.worklist,
+                checks_every=config.criteria.defaults.max_field_samples_between_checks,
             )
         except OSError as error:
             print(f"calwarden: cannot write to {args.out}: {error}", file=sys.stderr)
@@ -216,7 +225,7 @@ def _check(args: argparse.Namespace) -> int:
 
         print(render(document, full=False), end="")
         if args.out is not None:
-            print(f"\nverdict, flagged copy and report written to {args.out}")
+            print(f"\nverdict, flagged copy, reports and any re-run worklist written to {args.out}")
     return {"pass": EXIT_PASS, "fail": EXIT_FAIL}.get(document["status"], EXIT_ERROR)
 
 
@@ -571,13 +580,19 @@ def _daemon_folders(args: argparse.Namespace) -> tuple[Path, Path, AppConfig] | 
 
 
 def _status(args: argparse.Namespace) -> int:
-    from calwarden.daemon.cli.status import status_report
+    from calwarden.daemon.cli.status import status_document, status_report
 
     folders = _daemon_folders(args)
     if folders is None:
         return EXIT_ERROR
-    _, state_dir, _ = folders
-    text, found = status_report(state_dir)
+    out, state_dir, _ = folders
+    if args.json:
+        import json
+
+        document = status_document(state_dir, out)
+        print(json.dumps(document, indent=2, ensure_ascii=False))
+        return EXIT_PASS if document["ledger"] else EXIT_ERROR
+    text, found = status_report(state_dir, out)
     print(text, end="")
     return EXIT_PASS if found else EXIT_ERROR
 

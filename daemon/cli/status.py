@@ -6,6 +6,7 @@ from pathlib import Path
 
 from calwarden.daemon.alerts.sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
 from calwarden.daemon.intake.lock import is_locked, lock_owner
+from calwarden.daemon.outputs.overview import OVERVIEW_NAME
 from calwarden.daemon.outputs.printable import printable
 from calwarden.daemon.stores.control import ControlHistory
 from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
@@ -26,10 +27,95 @@ def _line(evaluation: Evaluation) -> str:
     return text
 
 
-def status_report(state_dir: Path) -> tuple[str, bool]:
+def _entry(evaluation: Evaluation | None) -> dict[str, object] | None:
+    if evaluation is None:
+        return None
+    return {
+        "inbox": evaluation.inbox,
+        "path": evaluation.path,
+        "status": evaluation.outcome,
+        "run": evaluation.run,
+        "instrument": evaluation.instrument,
+        "version": evaluation.version,
+        "failures": evaluation.failures,
+        "warnings": evaluation.warnings,
+        "reason": evaluation.message,
+        "evaluated_at": evaluation.evaluated_at,
+    }
+
+
+#: ``calwarden status --json``'s schema; keys are only ever added (README, "status --json").
+STATUS_SCHEMA = 1
+
+
+def status_document(state_dir: Path, out: Path | None = None) -> dict[str, object]:
+    """What ``status --json`` prints: stable keys, documented in the README."""
+    ledger_path = state_dir / LEDGER_NAME
+    overview = None if out is None else out / OVERVIEW_NAME
+    document: dict[str, object] = {
+        "schema": STATUS_SCHEMA,
+        "state_dir": str(state_dir),
+        "overview": str(overview) if overview is not None and overview.exists() else None,
+        "daemon_running": is_locked(state_dir),
+        "daemon_pid": lock_owner(state_dir) if is_locked(state_dir) else None,
+        "ledger": False,
+        "problem": None,
+        "files": None,
+        "control": None,
+        "last_file": None,
+        "last_failure": None,
+        "last_error": None,
+        "alerts": None,
+    }
+    if not ledger_path.exists():
+        document["problem"] = f"no ledger at {ledger_path}"
+        return document
+    try:
+        database = Database(ledger_path, read_only=True)
+        try:
+            files = FileStore(database)
+            counts = files.counts()
+            document["last_file"] = _entry(next(iter(files.latest(limit=1)), None))
+            for key, outcome in (("last_failure", "fail"), ("last_error", "error")):
+                document[key] = _entry(next(iter(files.latest(outcome=outcome, limit=1)), None))
+            series, points, limited = ControlHistory(database).control_summary()
+            try:
+                box = Outbox(database).outbox_counts()
+                document["alerts"] = {
+                    "written": box.files,
+                    "sent": box.sent,
+                    "waiting": box.waiting,
+                    "held": box.new + box.gathered,
+                    "dead": box.dead,
+                }
+            except LedgerError:  # a ledger from before the outbox
+                pass
+        finally:
+            database.close()
+    except LedgerError as error:
+        document["problem"] = f"cannot read the ledger: {error}"
+        return document
+    document["ledger"] = True
+    document["files"] = {
+        "judged": counts["pass"] + counts["fail"] + counts["error"],
+        "pass": counts["pass"],
+        "fail": counts["fail"],
+        "error": counts["error"],
+        "duplicate": counts["duplicate"],
+    }
+    document["control"] = {"series": series, "points": points, "with_limits": limited}
+    return document
+
+
+def status_report(state_dir: Path, out: Path | None = None) -> tuple[str, bool]:
     """The status text, and whether there was a ledger to read."""
     ledger_path = state_dir / LEDGER_NAME
     lines = [f"calwarden state folder: {state_dir}"]
+    if out is not None:
+        page = out / OVERVIEW_NAME
+        lines.append(
+            f"overview:     {page}" + ("" if page.exists() else " (written once the daemon runs)")
+        )
     if is_locked(state_dir):
         owner = lock_owner(state_dir)
         lines.append(f"daemon:       running{f' (process {owner})' if owner else ''}")

@@ -36,6 +36,7 @@ from calwarden.daemon.alerts.content import file_alert, payload_bytes
 from calwarden.daemon.alerts.settings import AlertSettings
 from calwarden.daemon.control_log.log import NOTHING, Assessment, assess
 from calwarden.daemon.outputs.files import fitting_stem, output_files, write_files
+from calwarden.daemon.outputs.html_report import Extras, render_html
 from calwarden.daemon.outputs.pictures import calibration_picture_name
 from calwarden.daemon.outputs.report import render
 from calwarden.daemon.outputs.verdict_json import calwarden_version
@@ -235,10 +236,22 @@ class Intake:
                     calibration_picture_name(name, analyte) for analyte in document["calibrations"]
                 ],
             }
+        evaluated_at = timestamp()  # before the outputs: the HTML report shows it
         try:
             if previous is not None:
                 self._archive(inbox, previous, out_folder, name)
-            files = output_files(document, judgement.table, judgement.verdict)
+            files = output_files(
+                document,
+                judgement.table,
+                judgement.verdict,
+                worklist=inbox.config.worklist,
+                checks_every=inbox.config.criteria.defaults.max_field_samples_between_checks,
+                extras=Extras(
+                    self._digests.get(inbox.name),
+                    evaluated_at,
+                    pictures_pending=bool(document.get("pictures")),
+                ),
+            )
             write_files(out_folder, name, files)
         except OSError as error:
             raise OutputError(f"cannot write the outputs in {out_folder}: {error}") from error
@@ -246,7 +259,6 @@ class Intake:
         message = _first_failure(document)
         failures, warnings = _count(document, "fail"), _count(document, "warn")
         verdict_path = out_folder / f"{name}.verdict.json"
-        evaluated_at = timestamp()
         alert = self._alert(
             inbox,
             relative,
@@ -284,7 +296,9 @@ class Intake:
                 alert=alert,
             )
         )
-        log.info(
+        # A monitoring system watching the log sees a failed run as a warning, an error as one.
+        level = {"fail": "warning", "error": "error"}.get(status, "info")
+        getattr(log, level)(
             "file_evaluated",
             inbox=inbox.name,
             path=relative,
@@ -415,8 +429,10 @@ class Intake:
     def _archive(self, inbox: Inbox, previous: Evaluation, out_folder: Path, name: str) -> None:
         """Write the previous version's outputs under ``<name>@v<version>``, from the ledger."""
         document_bytes, flagged = self.ledger.files.outputs_of(previous.id)
+        document = json.loads(document_bytes)
         files = {
-            ".report.txt": render(json.loads(document_bytes)).encode("utf-8"),
+            ".report.txt": render(document).encode("utf-8"),
+            ".report.html": render_html(document).encode("utf-8"),
             ".verdict.json": document_bytes,
         }
         if flagged is not None:

@@ -41,6 +41,7 @@ import threading
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
 from pathlib import Path, PurePosixPath
 
 import structlog
@@ -72,6 +73,8 @@ from calwarden.daemon.intake.settling import (
     wanted,
 )
 from calwarden.daemon.outputs.files import is_leftover_temporary
+from calwarden.daemon.outputs.html_report import rewrite_with_pictures
+from calwarden.daemon.outputs.overview import InboxPlace, SourceState, gather, write_overview
 from calwarden.daemon.outputs.pictures import (
     CHARTS_FOLDER,
     ChartCriteria,
@@ -84,6 +87,7 @@ from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
 from calwarden.daemon.settings.config import Inbox, WatchPlan
 from calwarden.daemon.stores.database import LEDGER_NAME, LedgerError
 from calwarden.daemon.stores.ledger import Ledger
+from calwarden.daemon.stores.outbox import Outbox
 from calwarden.daemon.stores.records import SeriesKey
 from calwarden.rules.criteria import Criteria
 
@@ -176,6 +180,10 @@ class Watcher:
         self._stale_charts: dict[SeriesKey, None] = {}  # ordered: drawn oldest first
         self._pictures_pending = True  # checked in the ledger at start
         self._drawing: _RunPictures | None = None
+        self._reports_due: dict[int, _RunPictures] = {}  # HTML reports to write with pictures
+        self._overview_stale = True  # written when nothing is due, and every overview_seconds
+        self._overview_next = 0.0
+        self._silent_alerted: set[tuple[str, str | None]] = set()  # one alert per silence
         self.sender: AlertSender | None = None
         self.notifier = Notifier()  # systemd's Type=notify; does nothing without one
         # The charts' acceptance windows: the criteria of the inbox bound to an instrument.
@@ -253,7 +261,7 @@ class Watcher:
         """Block until every pending picture is drawn (for the demo and tests)."""
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline and not self._finished.is_set():
-            if not self._due and not self._pictures_to_draw():
+            if not self._due and not self._pictures_to_draw() and not self._overview_stale:
                 return True
             time.sleep(0.05)
         return False
@@ -295,6 +303,10 @@ class Watcher:
                 self._settle_due()
                 if self._quiet():
                     self._draw_one()
+                if time.monotonic() >= self._overview_next or (
+                    self._overview_stale and self._quiet()
+                ):
+                    self._refresh_overview()
         except (LedgerError, OutputError) as error:
             self._fail(str(error))
         except Exception as error:  # a bug of ours: stop loudly rather than run half-broken
@@ -502,6 +514,7 @@ class Watcher:
         if self.sender is not None and outcome.status in ("fail", "error", "pass"):
             self.sender.wake()  # a control alert can come with a pass
         self._stale_charts.update(dict.fromkeys(outcome.series))
+        self._overview_stale = True
         if outcome.verdict_path is not None:
             self._pictures_pending = True
         if self._on_outcome is not None and outcome.status != "unchanged":
@@ -515,7 +528,7 @@ class Watcher:
     def _pictures_to_draw(self) -> bool:
         charts_on = self.plan.inboxes[0].config.control.charts
         busy = self._pictures_pending or self._drawing is not None or bool(self._stale_charts)
-        return charts_on and busy
+        return charts_on and (busy or bool(self._reports_due))
 
     def _quiet(self) -> bool:
         """Nothing to judge soon: time for a picture (a file arriving waits for one at most)."""
@@ -553,6 +566,9 @@ class Watcher:
                     )
                 finally:
                     self._stale_charts.pop(key, None)  # after drawing: wait_pictures sees it
+                    self._overview_stale = True  # it links the charts drawn
+            elif self._reports_due:
+                self._rewrite_report(self._reports_due.pop(next(iter(self._reports_due))))
         except LedgerError:
             raise
         except Exception as error:  # a picture is never worth stopping the daemon for
@@ -590,6 +606,79 @@ class Watcher:
                 # Marked even when drawing failed (and said so): never retried in a loop.
                 self._drawing = None
                 self._ledger.pictures.mark_drawn(drawing.evaluation_id)
+                self._reports_due[drawing.evaluation_id] = drawing  # once its charts are drawn
+
+    def _rewrite_report(self, drawing: _RunPictures) -> None:
+        """The run's HTML report again, with its pictures, unless a newer version replaced it."""
+        assert self._ledger is not None
+        document_bytes, _ = self._ledger.files.outputs_of(drawing.evaluation_id)
+        try:
+            on_disk = (drawing.folder / f"{drawing.stem}.verdict.json").read_bytes()
+        except OSError:
+            return
+        if on_disk != document_bytes:
+            return  # judged again since: the newer version's report stands
+        config_sha256, evaluated_at = self._ledger.files.provenance(drawing.evaluation_id)
+        rewrite_with_pictures(
+            drawing.document,
+            drawing.folder,
+            drawing.stem,
+            self.plan.out / CHARTS_FOLDER,
+            config_sha256=config_sha256,
+            evaluated_at=evaluated_at,
+        )
+
+    # ------------------------------------------------------------------ overview
+
+    def _refresh_overview(self) -> None:
+        """Write ``<out>/index.html`` and alert once for each instrument gone silent."""
+        assert self._ledger is not None
+        settings = self.settings
+        self._overview_stale = False
+        self._overview_next = time.monotonic() + settings.overview_seconds
+        places = [InboxPlace(i.name, i.instrument, i.out_dir) for i in self.plan.inboxes]
+        try:
+            overview = gather(
+                self._ledger.files,
+                Outbox(self._ledger.database) if self.plan.alerts.enabled else None,
+                self._ledger.control,
+                places,
+                self.plan.out,
+                days=settings.overview_days,
+                silent_after_hours=settings.silent_after_hours,
+                now=datetime.now(UTC),
+            )
+            write_overview(self.plan.out, overview, settings.overview_seconds)
+        except LedgerError:
+            raise
+        except Exception as error:  # the page is never worth stopping the daemon for
+            log.error("overview_failed", error=repr(error))
+            return
+        self._alert_silence(overview.sources)
+
+    def _alert_silence(self, sources: tuple[SourceState, ...]) -> None:
+        for source in sources:
+            key = (source.inbox, source.instrument)
+            if not source.silent:
+                self._silent_alerted.discard(key)  # heard again: a new silence alerts again
+            elif key not in self._silent_alerted and source.last is not None:
+                self._silent_alerted.add(key)
+                log.warning(
+                    "instrument_silent",
+                    inbox=source.inbox,
+                    instrument=source.instrument,
+                    last_file=source.last.path,
+                    last_at=source.last.evaluated_at,
+                )
+                self._daemon_alert(
+                    "instrument_silent",
+                    f"no file from {source.instrument or source.inbox} for more than "
+                    f"{self.settings.silent_after_hours:g} hours",
+                    inbox=source.inbox,
+                    instrument=source.instrument,
+                    last_file=source.last.path,
+                    last_at=source.last.evaluated_at,
+                )
 
     # ------------------------------------------------------------------ scans
 

@@ -1,4 +1,4 @@
-"""Writing the files of a verdict: JSON, flagged copy of the input, report.
+"""Writing the files of a verdict: JSON, flagged copy of the input, reports, re-run worklist.
 
 Every file is written atomically (a temporary file in the same folder,
 fsync, ``os.replace``), so a reader never sees half a verdict. The input
@@ -15,10 +15,12 @@ import tempfile
 import time
 from pathlib import Path
 
+from calwarden.daemon.outputs.html_report import Extras, render_html
 from calwarden.daemon.outputs.report import render
 from calwarden.daemon.outputs.verdict_json import dump_verdict, reported_as
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.parsing.table import RawTable, header_key
+from calwarden.daemon.settings.worklist import WorklistSettings
 from calwarden.rules.model import Kind
 from calwarden.rules.verdict import Result, Verdict
 
@@ -177,17 +179,32 @@ def flagged_csv(table: RawTable, verdict: Verdict) -> bytes:
 
 #: The files of one evaluation, in the order they are written: the verdict last,
 #: because its presence says the other files of the evaluation are complete.
-OUTPUT_SUFFIXES = (".flagged.csv", ".report.txt", ".verdict.json")
+OUTPUT_SUFFIXES = (".flagged.csv", ".report.txt", ".report.html", ".reruns.csv", ".verdict.json")
+#: Files only some verdicts have: an earlier version's is removed when the new one has none.
+_OPTIONAL_SUFFIXES = (".reruns.csv",)
 
 
 def output_files(
-    document: VerdictDocument, table: RawTable | None = None, verdict: Verdict | None = None
+    document: VerdictDocument,
+    table: RawTable | None = None,
+    verdict: Verdict | None = None,
+    *,
+    worklist: WorklistSettings | None = None,
+    checks_every: int = 10,
+    extras: Extras | None = None,
 ) -> dict[str, bytes]:
-    """The bytes of each output file by suffix (no flagged copy for a file never read)."""
+    """The bytes of each output file by suffix (no flagged copy for a file never read,
+    a re-run worklist only for a failing run with samples to re-run)."""
+    from calwarden.daemon.outputs.worklist import worklist_csv
+
     files: dict[str, bytes] = {}
     if table is not None and verdict is not None:
         files[".flagged.csv"] = flagged_csv(table, verdict)
     files[".report.txt"] = render(document).encode("utf-8")
+    files[".report.html"] = render_html(document, extras).encode("utf-8")
+    reruns = worklist_csv(document, worklist or WorklistSettings(), checks_every)
+    if reruns is not None:
+        files[".reruns.csv"] = reruns
     files[".verdict.json"] = (dump_verdict(document) + "\n").encode("utf-8")
     return files
 
@@ -197,10 +214,12 @@ def write_files(out_dir: Path, stem: str, files: dict[str, bytes]) -> list[Path]
     out_dir.mkdir(parents=True, exist_ok=True)
     written = []
     for suffix in OUTPUT_SUFFIXES:
+        path = out_dir / f"{stem}{suffix}"
         if suffix in files:
-            path = out_dir / f"{stem}{suffix}"
             atomic_write(path, files[suffix])
             written.append(path)
+        elif suffix in _OPTIONAL_SUFFIXES:
+            path.unlink(missing_ok=True)  # a passing new version: the old worklist is void
     return written
 
 
@@ -210,9 +229,13 @@ def write_outputs(
     document: VerdictDocument,
     table: RawTable | None = None,
     verdict: Verdict | None = None,
+    *,
+    worklist: WorklistSettings | None = None,
+    checks_every: int = 10,
 ) -> list[Path]:
-    """Write the verdict JSON, the report and (when the file was read) the flagged copy."""
-    return write_files(out_dir, stem, output_files(document, table, verdict))
+    """Write the verdict JSON, the reports, the worklist and (when read) the flagged copy."""
+    files = output_files(document, table, verdict, worklist=worklist, checks_every=checks_every)
+    return write_files(out_dir, stem, files)
 
 
 def is_leftover_temporary(name: str) -> bool:
@@ -220,5 +243,5 @@ def is_leftover_temporary(name: str) -> bool:
     return (
         name.startswith(".")
         and name.endswith(".tmp")
-        and any(f"{suffix}." in name for suffix in (*OUTPUT_SUFFIXES, ".png"))
+        and any(f"{suffix}." in name for suffix in (*OUTPUT_SUFFIXES, ".png", "index.html"))
     )

@@ -37,6 +37,7 @@ from calwarden.daemon.settings.formats import (
 )
 from calwarden.daemon.settings.presets import with_preset
 from calwarden.daemon.settings.watch import InboxSettings, WatchSettings, merge_criteria
+from calwarden.daemon.settings.worklist import WorklistSettings
 from calwarden.rules.criteria import AnalyteCriteria, Criteria
 from calwarden.rules.errors import ConfigError
 from calwarden.rules.evaluate import active_rules
@@ -60,6 +61,11 @@ class AppConfig(BaseModel):
     control: ControlSettings = Field(
         default_factory=ControlSettings,
         description="the control-chart log across runs: limits, Westgard rules, charts",
+    )
+    worklist: WorklistSettings = Field(
+        default_factory=WorklistSettings,
+        description="the re-run worklist of a failing run, in an instrument's sequence-import "
+        "layout (<stem>.reruns.csv)",
     )
     watch: WatchSettings = Field(default_factory=WatchSettings)
     alerts: AlertSettings = Field(
@@ -144,6 +150,7 @@ def _known_keys() -> list[str]:
         RetrySettings,
         WebhookSettings,
         DailySummarySettings,
+        WorklistSettings,
     )
     return [name for model in models for name in model.model_fields]
 
@@ -352,6 +359,7 @@ def plan_watch(
                     criteria=entry.criteria or config.criteria,
                     format=layout,
                     control=config.control,
+                    worklist=entry.worklist or config.worklist,
                 ),
             )
         )

@@ -15,6 +15,7 @@ from pydantic import Field, field_validator
 
 from calwarden.daemon.settings.formats import ExportFormat
 from calwarden.daemon.settings.section import Section
+from calwarden.daemon.settings.worklist import WorklistSettings
 from calwarden.rules.criteria import Criteria
 
 #: Names an instrument or its software writes while a file is still being written.
@@ -76,6 +77,24 @@ class WatchSettings(Section):
         description="judge a symbolic link in an inbox whose target lies outside the inbox; "
         "by default such a link is skipped unread, with a link_outside_inbox log event",
     )
+    overview_days: int = Field(
+        default=7,
+        ge=1,
+        le=366,
+        description="days of runs the overview page (<out>/index.html) lists",
+    )
+    overview_seconds: float = Field(
+        default=300.0,
+        ge=5,
+        le=86400,
+        description="the overview page is written after each file and at least this often",
+    )
+    silent_after_hours: float | None = Field(
+        default=72.0,
+        gt=0,
+        description="an instrument with no file for this long is shown as silent on the "
+        "overview and raises one daemon alert; null: never",
+    )
     log_max_bytes: int = Field(
         default=10_000_000, ge=10_000, description="the log file is rotated at this size"
     )
@@ -107,6 +126,9 @@ class InboxSettings(Section):
     )
     format: ExportFormat | None = Field(
         default=None, description="this instrument's export layout; default the top-level format"
+    )
+    worklist: WorklistSettings | None = Field(
+        default=None, description="this instrument's worklist layout; default the top-level one"
     )
     criteria: Criteria | None = Field(
         default=None,

@@ -117,6 +117,31 @@ class FileStore:
         )
         return [Evaluation(*row) for row in rows]
 
+    def last_by_source(self) -> list[Evaluation]:
+        """The newest evaluation of each inbox and instrument (for the overview page)."""
+        rows = self._db.rows(
+            f"SELECT {_COLUMNS} FROM evaluations WHERE id IN (SELECT MAX(id) FROM evaluations "
+            "GROUP BY inbox, COALESCE(instrument, '')) ORDER BY inbox, instrument"
+        )
+        return [Evaluation(*row) for row in rows]
+
+    def since(self, evaluated_at: str, *, limit: int) -> list[Evaluation]:
+        """Evaluations at or after a :func:`~records.timestamp`, newest first."""
+        rows = self._db.rows(
+            f"SELECT {_COLUMNS} FROM evaluations WHERE evaluated_at >= ? ORDER BY id DESC LIMIT ?",
+            (evaluated_at, limit),
+        )
+        return [Evaluation(*row) for row in rows]
+
+    def provenance(self, evaluation_id: int) -> tuple[str | None, str]:
+        """The configuration SHA-256 and the time of one evaluation (for its HTML report)."""
+        row = self._db.one(
+            "SELECT config_sha256, evaluated_at FROM evaluations WHERE id = ?", (evaluation_id,)
+        )
+        if row is None:
+            raise LedgerError(f"{self._db.path}: no evaluation {evaluation_id}")
+        return (None if row[0] is None else str(row[0])), str(row[1])
+
     # ------------------------------------------------------------------ writes
 
     def touch(self, inbox: str, path: str, seen: Seen) -> None:
