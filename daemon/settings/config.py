@@ -35,6 +35,7 @@ from calwarden.daemon.settings.formats import (
     NominalSection,
     WideSection,
 )
+from calwarden.daemon.settings.store import StoreSettings
 from calwarden.daemon.settings.watch import InboxSettings, WatchSettings, merge_criteria
 from calwarden.rules.criteria import AnalyteCriteria, Criteria
 from calwarden.rules.errors import ConfigError
@@ -60,6 +61,11 @@ class AppConfig(BaseModel):
         default_factory=AlertSettings,
         description="who hears about failed runs, unjudged files, control-chart rules and "
         "daemon trouble, and how (e-mail, .eml files, a webhook)",
+    )
+    store: StoreSettings = Field(
+        default_factory=StoreSettings,
+        description="where the ledger lives: the state folder's SQLite file, or a lab-wide "
+        "PostgreSQL server shared by every daemon",
     )
     inboxes: tuple[InboxSettings, ...] = Field(
         default=(),
@@ -138,6 +144,7 @@ def _known_keys() -> list[str]:
         RetrySettings,
         WebhookSettings,
         DailySummarySettings,
+        StoreSettings,
     )
     return [name for model in models for name in model.model_fields]
 
@@ -244,6 +251,14 @@ class WatchPlan:
     inboxes: tuple[Inbox, ...]
     alerts: AlertSettings = field(default_factory=AlertSettings)
     control: ControlSettings = field(default_factory=ControlSettings)  # for charts in alerts
+    store: StoreSettings = field(default_factory=StoreSettings)  # where the ledger lives
+
+
+def resolve_store_paths(store: StoreSettings, base: Path) -> StoreSettings:
+    """The store settings with the password file made relative to the configuration's folder."""
+    if store.password_file is None:
+        return store
+    return store.model_copy(update={"password_file": base / store.password_file})
 
 
 def resolve_alert_paths(alerts: AlertSettings, base: Path) -> AlertSettings:
@@ -357,4 +372,5 @@ def plan_watch(
         tuple(resolved),
         alerts=resolve_alert_paths(config.alerts, base),
         control=config.control,
+        store=resolve_store_paths(config.store, base),
     )
