@@ -174,6 +174,37 @@ def test_store_migrate_brings_an_empty_database_to_the_schema(
     assert f"(was {SCHEMA_VERSION})" in capsys.readouterr().out
 
 
+def test_a_daemon_role_with_row_rights_only_judges_after_the_owner_migrated(
+    tmp_path: Path, pg_server: Server, daemons: list[Daemon]
+) -> None:
+    """The README's roles: the owner migrates, a daemon with row rights only judges and alerts."""
+    import psycopg
+
+    with psycopg.connect(pg_server.url(), autocommit=True) as admin:
+        admin.execute("CREATE ROLE qc_owner LOGIN")
+        admin.execute("CREATE ROLE qc_daemon LOGIN")
+        admin.execute("CREATE DATABASE qc_lab OWNER qc_owner")
+    owner_url = pg_server.url("qc_lab").replace("calwarden@", "qc_owner@")
+    daemon_url = pg_server.url("qc_lab").replace("calwarden@", "qc_daemon@")
+    with psycopg.connect(owner_url, autocommit=True) as owner:
+        owner.execute("GRANT USAGE ON SCHEMA public TO qc_daemon")
+    early = Watcher(plan_for(tmp_path / "early", "icp1", daemon_url))
+    with pytest.raises(StartError, match="store migrate"):  # no tables yet, no right to make them
+        early.start()
+    config = tmp_path / "owner.yaml"
+    config.write_text(f"store:\n  url: '{owner_url}'\n", encoding="utf-8")
+    assert main(["store", "migrate", "--config", str(config)]) == 0
+    with psycopg.connect(owner_url, autocommit=True) as owner:
+        owner.execute("GRANT SELECT, INSERT, UPDATE ON ALL TABLES IN SCHEMA public TO qc_daemon")
+        owner.execute("GRANT USAGE ON ALL SEQUENCES IN SCHEMA public TO qc_daemon")
+    daemon = start(daemons, plan_for(tmp_path / "pc", "icp1", daemon_url, {}))
+    (daemon.inbox / "a.csv").write_bytes(failing_file(1))
+    wait_for(lambda: len(daemon.outcomes) >= 1, DEADLINE, "judged")
+    outbox = daemon.plan.state_dir / "outbox"
+    wait_for(lambda: any(outbox.glob("*-fail.eml")), DEADLINE, "the alert released")
+    assert daemon.watcher.fault is None
+
+
 # --------------------------------------------------------------------------- several daemons
 
 

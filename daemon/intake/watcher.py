@@ -194,13 +194,16 @@ class Watcher:
         except LedgerError as error:
             self._lock.release()
             # Exit 2, not 3: no restart repairs a ledger that does not open (README, exit codes).
-            hint = (
-                "the ledger's server cannot be reached; check store.url and that it runs"
-                if isinstance(error, StoreUnavailable)
-                else "a damaged ledger: restore it from a backup, or move it aside "
-                "to start a new, empty one"
-            )
-            raise StartError(f"{error} ({hint})") from None
+            if isinstance(error, StoreUnavailable):
+                hint = " (the ledger's server cannot be reached; check store.url and that it runs)"
+            elif self.plan.store.url is not None:
+                hint = ""  # the server said why
+            else:
+                hint = (
+                    " (a damaged ledger: restore it from a backup, or move it aside "
+                    "to start a new, empty one)"
+                )
+            raise StartError(f"{error}{hint}") from None
         try:
             self._claim_inboxes(ledger)
         except (LedgerError, StartError):

@@ -130,8 +130,19 @@ class Database:
         self._engine = engine
         try:
             if self._migrate:
-                with self.write() as transaction:
-                    migrate(transaction, engine)
+                try:
+                    with self.write() as transaction:
+                        migrate(transaction, engine)
+                except StoreUnavailable:
+                    raise
+                except LedgerError as error:
+                    if not self.shared:
+                        raise
+                    # Most likely a daemon's role without DDL rights meeting an older schema.
+                    raise LedgerError(
+                        f"{error} (bring the schema up to date with `calwarden store migrate` "
+                        "as the tables' owner)"
+                    ) from None
             found = self.meta("schema_version")
         except LedgerError:
             engine.close()
