@@ -105,10 +105,12 @@ class PostgresEngine:
         return bool(row and row[0])
 
     def holders(self, names: list[str]) -> set[str]:
-        # A two-key advisory lock shows in pg_locks as classid, objid (as oid) and objsubid 2.
+        # A two-key advisory lock shows in pg_locks as classid, objid (as oid) and objsubid 2,
+        # in its database (another lab's database on the same server has locks of its own).
         rows = self._connection.execute(
             "SELECT name FROM unnest(%s::text[]) AS name WHERE EXISTS (SELECT 1 FROM pg_locks l "
             "WHERE l.locktype = 'advisory' AND l.granted AND l.objsubid = 2 "
+            "AND l.database = (SELECT oid FROM pg_database WHERE datname = current_database()) "
             "AND l.classid = %s::bigint::oid "
             "AND l.objid = (hashtext(name)::bigint & 4294967295)::oid)",
             (names, _INBOX_LOCKS),

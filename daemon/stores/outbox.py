@@ -212,6 +212,14 @@ class Outbox:
         (sent, dead, postponed) then sets it for good. A sender that dies holding a
         claim leaves the delivery to another once the lease has run out.
         """
+        if not self._db.shared:  # one sender on a PC's file: nothing to claim from
+            rows = self._db.rows(
+                f"SELECT {_ALERT_COLUMNS}, d.channel, d.attempts, d.first_attempt "
+                "FROM deliveries d JOIN alerts a ON a.id = d.alert_id WHERE d.state = 'waiting' "
+                "AND d.next_attempt <= ? ORDER BY d.next_attempt, a.id LIMIT ?",
+                (now, limit),
+            )
+            return [Delivery(_alert(row[:9]), str(row[9]), int(row[10]), row[11]) for row in rows]
         with self._db.write() as transaction:
             claimed = transaction.rows(
                 "SELECT alert_id, channel FROM deliveries WHERE state = 'waiting' "
