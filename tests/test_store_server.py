@@ -30,6 +30,7 @@ from calwarden.daemon.settings.store import StoreSettings
 from calwarden.daemon.stores.copy import ledger_id
 from calwarden.daemon.stores.database import SCHEMA_VERSION, Database, ServerTarget
 from calwarden.daemon.stores.ledger import Ledger
+from calwarden.daemon.stores.outbox import AlertRecorder
 from calwarden.daemon.stores.records import NewAlert, NewEvaluation, NewPoint, SeriesKey
 from calwarden.rules.errors import ConfigError
 
@@ -269,6 +270,44 @@ def test_each_alert_is_sent_by_exactly_one_of_two_daemons(
     assert len(ids) == 8 and len(set(ids)) == 8
     written = [*tmp_path.glob("icp*/out/.calwarden/outbox/*.eml")]
     assert len(written) == 8  # one .eml per alert, in whichever daemon released it
+
+
+def test_a_claimed_delivery_is_left_to_its_sender_until_the_lease_runs_out(lab: str) -> None:
+    """Two senders' connections: a delivery one has claimed is not due for the other."""
+    from calwarden.daemon.stores.outbox import Outbox
+
+    first, second = Database(ServerTarget(lab)), Database(ServerTarget(lab))
+    try:
+        AlertRecorder(first).record(NewAlert("daemon:x", "daemon", None, None, "2026-12-01", "{}"))
+        (alert,) = Outbox(first).alerts_in("new")
+        assert Outbox(first).release(alert.id, ("email",), 100.0, "x.eml")
+        assert not Outbox(second).release(alert.id, ("email",), 100.0, "x.eml")  # taken
+        assert len(Outbox(first).due(100.0, lease_seconds=60.0)) == 1
+        assert Outbox(second).due(150.0, lease_seconds=60.0) == []  # claimed, lease running
+        (again,) = Outbox(second).due(161.0, lease_seconds=60.0)  # the first died: lease over
+        assert again.alert.id == alert.id
+    finally:
+        first.close()
+        second.close()
+
+
+def test_two_daemons_log_one_instruments_points_in_one_series(
+    tmp_path: Path, lab: str, daemons: list[Daemon], capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Two daemons' runs of one instrument are one series; `chart export` lists both."""
+    one = start(daemons, plan_for(tmp_path, "icp1", lab))
+    two = start(daemons, plan_for(tmp_path, "icp2", lab))
+    (one.inbox / "a.csv").write_bytes(failing_file(1))  # the metals runs carry CCVs
+    (two.inbox / "b.csv").write_bytes(failing_file(2))
+    wait_for(lambda: len(one.outcomes) + len(two.outcomes) >= 2, DEADLINE, "both judged")
+    config = tmp_path / "lab.yaml"
+    config.write_text(f"store:\n  url: '{lab}'\n", encoding="utf-8")
+    capsys.readouterr()
+    assert main(["chart", "export", "--config", str(config)]) == 0
+    exported = capsys.readouterr().out
+    # Both PCs' runs of the one instrument (named in the files) are points of one series.
+    lines = [line for line in exported.splitlines() if line.startswith("BWL-ICPMS-2,Zn,CCV,")]
+    assert {line.split(",")[5] for line in lines} == {"BWL-FAIL-001", "BWL-FAIL-002"}
 
 
 # --------------------------------------------------------------------------- the server away
