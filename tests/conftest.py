@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Iterator, MutableMapping
+from contextlib import suppress
 from pathlib import Path
 from typing import Any
 
 import pytest
 from mail_server import Recorder, free_port
+from pg_server import Server, binaries
 from structlog.testing import capture_logs
 
 PROJECT = Path(__file__).resolve().parent.parent
@@ -62,3 +64,32 @@ def out(tmp_path: Path) -> Path:
     folder = tmp_path / "out"
     folder.mkdir()
     return folder
+
+
+@pytest.fixture(scope="session")
+def pg_server() -> Iterator[Server]:
+    """A throw-away PostgreSQL server for the whole session (tests/pg_server.py), then stopped."""
+    bin_dir = binaries()
+    if bin_dir is None:
+        pytest.skip("Debian's PostgreSQL is not installed (.ci/run installs it)")
+    pytest.importorskip("psycopg", reason="the postgresql extra is not installed")
+    server = Server(bin_dir)
+    try:
+        server.start()
+        yield server
+    finally:
+        with suppress(RuntimeError):  # not running: a test stopped it and failed before restarting
+            server.stop()
+        server.remove()
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def store(request: pytest.FixtureRequest) -> Any:
+    """Where a test's ledger lives: a SQLite file in the state folder, or a fresh database on
+    the session's PostgreSQL server (a StoreSettings)."""
+    from calwarden.daemon.settings.store import StoreSettings
+
+    if request.param == "sqlite":
+        return StoreSettings()
+    server: Server = request.getfixturevalue("pg_server")
+    return StoreSettings(url=server.new_database(), retry_seconds=0.2)

@@ -13,7 +13,7 @@ from mail_server import Recorder, free_port
 from calwarden.daemon.alerts.sender import OUTBOX_FOLDER, AlertSender
 from calwarden.daemon.alerts.settings import AlertSettings
 from calwarden.daemon.cli.main import main
-from calwarden.daemon.stores.database import LEDGER_NAME, Database
+from calwarden.daemon.stores.database import LEDGER_NAME, SCHEMA_VERSION, Database
 from calwarden.daemon.stores.ledger import Ledger
 from calwarden.daemon.stores.outbox import Outbox
 
@@ -100,7 +100,7 @@ def test_a_version_1_ledger_gains_the_outbox_and_keeps_its_records(tmp_path: Pat
         db.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
     upgraded = Database(path)
     try:
-        assert upgraded.meta("schema_version") == "3"
+        assert upgraded.meta("schema_version") == str(SCHEMA_VERSION)
         assert Outbox(upgraded).outbox_counts().files == 0
     finally:
         upgraded.close()

@@ -386,9 +386,15 @@ def test_fifty_failures_at_once_give_three_messages_and_one_digest_naming_the_re
 
     class ClockedSender(AlertSender):
         def __init__(
-            self, state_dir: Path, settings: AlertSettings, control: ControlSettings | None = None
+            self,
+            state_dir: Path,
+            settings: AlertSettings,
+            control: ControlSettings | None = None,
+            **options: Any,
         ) -> None:
-            super().__init__(state_dir, settings, control, clock=lambda: time.time() + offset[0])
+            super().__init__(
+                state_dir, settings, control, clock=lambda: time.time() + offset[0], **options
+            )
 
     monkeypatch.setattr(watcher_module, "AlertSender", ClockedSender)
     mailbox = Mailbox()

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import ast
+import re
 import tomllib
 from pathlib import Path
 
@@ -103,8 +104,11 @@ def test_every_folder_is_an_installed_package() -> None:
     assert listed == folders
 
 
-#: The one module that knows the ledger's engine (SQLite); see DEVELOPERS.md.
-ENGINE_MODULE = PROJECT / "daemon" / "stores" / "database.py"
+#: The modules that know a ledger's engine (SQLite, PostgreSQL); see DEVELOPERS.md.
+ENGINE_MODULES = {
+    "sqlite3": PROJECT / "daemon" / "stores" / "engine_sqlite.py",
+    "psycopg": PROJECT / "daemon" / "stores" / "engine_postgres.py",
+}
 
 
 @pytest.mark.parametrize(
@@ -112,9 +116,28 @@ ENGINE_MODULE = PROJECT / "daemon" / "stores" / "database.py"
     sorted((PROJECT / "daemon").rglob("*.py")),
     ids=lambda p: str(p.relative_to(PROJECT)),
 )
-def test_only_the_engine_module_imports_the_database_driver(path: Path) -> None:
-    """No daemon module but daemon/stores/database.py imports sqlite3 (or another driver)."""
-    if path == ENGINE_MODULE:
-        return
+def test_only_the_engine_modules_import_the_database_drivers(path: Path) -> None:
+    """Only daemon/stores/engine_sqlite.py imports sqlite3, only engine_postgres.py psycopg."""
     imported = _imported(path, ast.parse(path.read_text(encoding="utf-8")))
-    assert not (imported & {"sqlite3", "psycopg"})
+    for driver, engine_module in ENGINE_MODULES.items():
+        if path != engine_module:
+            assert not any(name == driver or name.startswith(driver + ".") for name in imported)
+
+
+_SQL = re.compile(r"\b(SELECT\s.+\sFROM|INSERT\s+INTO|UPDATE\s+\w+\s+SET|DELETE\s+FROM)\b")
+
+
+@pytest.mark.parametrize(
+    "path",
+    sorted(p for p in (PROJECT / "daemon").rglob("*.py") if p.parent.name != "stores"),
+    ids=lambda p: str(p.relative_to(PROJECT)),
+)
+def test_no_sql_outside_the_stores(path: Path) -> None:
+    """No daemon module outside daemon/stores/ holds a SQL statement in a string."""
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    texts = [
+        node.value
+        for node in ast.walk(tree)
+        if isinstance(node, ast.Constant) and isinstance(node.value, str)
+    ]
+    assert not [text for text in texts if _SQL.search(text)]

@@ -30,7 +30,7 @@ from calwarden.daemon.intake.accept import Intake, Outcome
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.pipeline import judge_file
 from calwarden.daemon.settings.config import AppConfig, build_config, plan_watch
-from calwarden.daemon.stores.database import LEDGER_NAME
+from calwarden.daemon.stores.database import LEDGER_NAME, SCHEMA_VERSION
 from calwarden.daemon.stores.ledger import Ledger
 from calwarden.daemon.stores.records import SeriesKey
 from calwarden.rules.control_points import ControlObservation, control_observations
@@ -852,7 +852,7 @@ def test_a_version_2_ledger_gains_the_limits_split_and_keeps_its_limits(tmp_path
     path = _version_2_ledger(tmp_path)
     upgraded = Ledger.open(path)
     try:
-        assert upgraded.database.meta("schema_version") == "3"
+        assert upgraded.database.meta("schema_version") == str(SCHEMA_VERSION)
         limits = upgraded.control.active_limits(ZN_CCV)
         assert limits is not None
         assert (limits.centre, limits.sd, limits.sd_within, limits.runs) == (100.0, 1.5, None, 0)

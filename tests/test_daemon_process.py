@@ -12,7 +12,6 @@ import json
 import os
 import shutil
 import signal
-import sqlite3
 import subprocess
 import sys
 import time
@@ -24,6 +23,9 @@ from typing import Any
 import pytest
 
 from calwarden.daemon.cli.demo import run_demo
+from calwarden.daemon.settings.store import StoreSettings
+from calwarden.daemon.stores.database import Database, LedgerError
+from calwarden.daemon.stores.engine import store_target
 
 PROJECT = Path(__file__).resolve().parent.parent
 FIXTURES = PROJECT / "fixtures"
@@ -237,31 +239,45 @@ def _burst_file(index: int) -> bytes:
     return text.replace(SMALL_RUN_NAME, f"BWL-BURST-{index:03d}").encode("utf-8")
 
 
-def _judged_rows(ledger: Path) -> int:
-    """Judged rows in the ledger right now, read-only beside the writing daemon."""
+def _judged(store: StoreSettings, state_dir: Path) -> list[tuple[str, str]]:
+    """(path, sha256) of every judged row in the ledger right now, read beside the daemon."""
+    database = Database(store_target(state_dir, store), read_only=True)
     try:
-        connection = sqlite3.connect(f"{ledger.as_uri()}?mode=ro", uri=True, timeout=1)
-        try:
-            (count,) = connection.execute(
-                "SELECT COUNT(*) FROM evaluations WHERE outcome != 'duplicate'"
-            ).fetchone()
-        finally:
-            connection.close()
-    except sqlite3.Error:
+        rows = database.rows(
+            "SELECT path, sha256 FROM evaluations WHERE outcome != 'duplicate' ORDER BY path"
+        )
+        assert database.integrity() == "ok"
+    finally:
+        database.close()
+    return [(str(path), str(sha)) for path, sha in rows]
+
+
+def _judged_rows(store: StoreSettings, state_dir: Path) -> int:
+    try:
+        return len(_judged(store, state_dir))
+    except LedgerError:
         return -1  # not created yet, or busy for a moment
-    return int(count)
+
+
+def store_config(tmp_path: Path, store: StoreSettings) -> tuple[str, ...]:
+    """The --config arguments that put the daemon's ledger where ``store`` says."""
+    if store.url is None:
+        return ()
+    config = tmp_path / "store.yaml"
+    config.write_text(f"store:\n  url: '{store.url}'\n", encoding="utf-8")
+    return ("--config", str(config))
 
 
 @posix_only
 @pytest.mark.parametrize("kill_after", [1, 60, 130], ids=lambda n: f"after-{n}-verdicts")
 def test_kill_9_mid_burst_then_restart_judges_every_file_exactly_once(
-    spawn: Spawn, folders: tuple[Path, Path], kill_after: int
+    spawn: Spawn, folders: tuple[Path, Path], kill_after: int, store: StoreSettings
 ) -> None:
     """After kill -9 mid-burst and a restart, every file has one verdict and one ledger row."""
     inbox, out = folders
     state_dir = out / ".calwarden"
-    ledger = state_dir / "ledger.sqlite3"
-    first = start_watch(spawn, inbox, out)
+    options = store_config(inbox.parent, store)
+    first = start_watch(spawn, inbox, out, *options)
     inputs = {}
     for index in range(BURST):
         path = inbox / f"burst-{index:03d}.csv"
@@ -274,8 +290,8 @@ def test_kill_9_mid_burst_then_restart_judges_every_file_exactly_once(
     judged_before_kill = len(verdicts(out))
     assert judged_before_kill < BURST, "the daemon finished before the kill; kill earlier"
 
-    second = start_watch(spawn, inbox, out)
-    assert wait_for(lambda: _judged_rows(ledger) >= BURST, 60.0), second.stderr()
+    second = start_watch(spawn, inbox, out, *options)
+    assert wait_for(lambda: _judged_rows(store, state_dir) >= BURST, 60.0), second.stderr()
     second.process.terminate()
     assert second.exit_code() == 0, second.stderr()
 
@@ -285,15 +301,9 @@ def test_kill_9_mid_burst_then_restart_judges_every_file_exactly_once(
         assert source["sha256"] == sha256_of(path), stem
     leftovers = [n for n in os.listdir(out) if n.startswith(".") and n.endswith(".tmp")]
     assert leftovers == []
-    connection = sqlite3.connect(ledger)
-    try:
-        assert connection.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
-        rows = connection.execute(
-            "SELECT path, sha256 FROM evaluations WHERE outcome != 'duplicate' ORDER BY path"
-        ).fetchall()
-    finally:
-        connection.close()
-    assert rows == [(path.name, sha256_of(path)) for _, path in sorted(inputs.items())]
+    assert _judged(store, state_dir) == [
+        (path.name, sha256_of(path)) for _, path in sorted(inputs.items())
+    ]
 
 
 # --------------------------------------------------------------------------- refusals

@@ -6,6 +6,7 @@ feed it files directly, as the watcher's worker does once a file has settled.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 from collections.abc import Iterator
@@ -19,7 +20,9 @@ from calwarden.daemon.cli.status import status_report
 from calwarden.daemon.intake.accept import Intake, Outcome
 from calwarden.daemon.intake.watcher import Watcher
 from calwarden.daemon.settings.config import AppConfig, Inbox, WatchPlan, plan_watch
-from calwarden.daemon.stores.database import LEDGER_NAME
+from calwarden.daemon.settings.store import StoreSettings
+from calwarden.daemon.stores.database import Target
+from calwarden.daemon.stores.engine import store_target
 from calwarden.daemon.stores.ledger import Ledger
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -35,12 +38,18 @@ def sha256(data: bytes) -> str:
 
 
 @pytest.fixture
-def plan(tmp_path: Path) -> WatchPlan:
+def plan(tmp_path: Path, store: StoreSettings) -> WatchPlan:
+    """One inbox, its ledger in a SQLite file or on the session's PostgreSQL server."""
     (tmp_path / "inbox").mkdir()
     (tmp_path / "out").mkdir()
-    return plan_watch(
+    planned = plan_watch(
         AppConfig(), inbox=tmp_path / "inbox", out=tmp_path / "out", settle_seconds=SETTLE
     )
+    return dataclasses.replace(planned, store=store)
+
+
+def target(plan: WatchPlan) -> Target:
+    return store_target(plan.state_dir, plan.store)
 
 
 class Run:
@@ -81,7 +90,7 @@ def drop_week(plan: WatchPlan, run: Run) -> None:
 
 
 def reader(plan: WatchPlan) -> Ledger:
-    return Ledger.open(plan.state_dir / LEDGER_NAME, read_only=True)
+    return Ledger.open(target(plan), read_only=True)
 
 
 # --------------------------------------------------------------------------- the ledger file
@@ -125,7 +134,7 @@ def test_status_report_gives_counts_and_last_failure(plan: WatchPlan, running: R
     (inbox.path / "tuesday.csv").write_bytes(FAILING)
     running.wait_outcomes(2)
     (failed,) = [o for o in running.outcomes if o.status == "fail"]
-    text, found = status_report(plan.state_dir)
+    text, found = status_report(plan.state_dir, store=plan.store)
     assert found
     assert "daemon:       running" in text
     assert "files judged: 2 (pass 1, fail 1, error 0); duplicates not judged again: 0" in text
@@ -139,7 +148,7 @@ def test_status_report_escapes_control_characters_of_a_file(plan: WatchPlan, run
     text = FAILING.decode("utf-8").replace("BWL-ICPMS-2-20261124-A", "R\x1b[2J-1")
     (plan.inboxes[0].path / "tues\rday.csv").write_text(text, encoding="utf-8")
     running.wait_outcomes(1)
-    report, _ = status_report(plan.state_dir)
+    report, _ = status_report(plan.state_dir, store=plan.store)
     assert "\x1b" not in report and "\r" not in report
     assert "tues\\rday.csv: FAIL" in report and "run R\\x1b[2J-1" in report
 
@@ -152,7 +161,7 @@ def test_status_report_reads_the_ledger_after_the_daemon_stopped(
     running.wait_outcomes(1)
     running.watcher.stop()
     assert running.watcher.wait(DEADLINE)
-    text, found = status_report(plan.state_dir)
+    text, found = status_report(plan.state_dir, store=plan.store)
     assert found
     assert "daemon:       not running" in text
     assert "files judged: 1 (pass 0, fail 0, error 1)" in text
@@ -166,7 +175,7 @@ def test_status_report_reads_the_ledger_after_the_daemon_stopped(
 @pytest.fixture
 def intake(plan: WatchPlan) -> Iterator[Intake]:
     """The intake with its own writing ledger connection (no watcher running)."""
-    ledger = Ledger.open(plan.state_dir / LEDGER_NAME)
+    ledger = Ledger.open(target(plan))
     try:
         yield Intake(ledger, plan.inboxes)
     finally:
@@ -229,11 +238,11 @@ def test_file_rewritten_with_another_files_content_has_a_current_verdict(
     assert document["source"]["sha256"] == sha256(PASSING)
 
 
-def test_only_the_newest_runs_keep_pending_pictures(tmp_path: Path) -> None:
+def test_only_the_newest_runs_keep_pending_pictures(plan: WatchPlan) -> None:
     """After a backlog, all but the newest N judged runs are marked as not to be drawn."""
     from calwarden.daemon.stores.records import NewEvaluation
 
-    ledger = Ledger.open(tmp_path / LEDGER_NAME)
+    ledger = Ledger.open(target(plan))
     try:
         for number in range(8):
             ledger.record_evaluation(

@@ -25,6 +25,7 @@ import random
 import threading
 import time
 from collections.abc import Callable
+from contextlib import suppress
 from datetime import UTC, datetime, timedelta
 from email.message import EmailMessage
 from email.parser import BytesParser
@@ -49,7 +50,13 @@ from calwarden.daemon.control_log.log import series_name
 from calwarden.daemon.outputs.files import atomic_write
 from calwarden.daemon.settings.control import ControlSettings
 from calwarden.daemon.stores.control import ControlHistory
-from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
+from calwarden.daemon.stores.database import (
+    LEDGER_NAME,
+    Database,
+    LedgerError,
+    StoreUnavailable,
+    Target,
+)
 from calwarden.daemon.stores.outbox import Delivery, Outbox, StoredAlert
 from calwarden.daemon.stores.records import NewAlert, SeriesKey, timestamp
 
@@ -102,8 +109,12 @@ class AlertSender:
         *,
         criteria: ChartCriteria | None = None,
         clock: Callable[[], float] = time.time,
+        ledger: Target | None = None,
+        retry_seconds: float = 5.0,
     ) -> None:
         self.state_dir = state_dir
+        self.ledger = ledger if ledger is not None else state_dir / LEDGER_NAME
+        self._retry_seconds = retry_seconds  # while the ledger's server is away
         self.settings = settings
         self.control = control
         self.criteria = criteria  # the runs' acceptance window, on a chart without limits
@@ -119,6 +130,7 @@ class AlertSender:
         self._outbox: Outbox | None = None
         self._control_log: ControlHistory | None = None
         self._release_failed = False
+        self._lease = 0.0
         self.fault: str | None = None
 
     # ------------------------------------------------------------------ life cycle
@@ -147,16 +159,32 @@ class AlertSender:
 
     # ------------------------------------------------------------------ the loop
 
+    def _open(self) -> Database | None:
+        """The sender's own connection; while the server is away, tried again until stopped."""
+        while True:
+            try:
+                return Database(self.ledger)
+            except StoreUnavailable as error:
+                log.warning("alert_sender_store_away", reason=str(error))
+                self._settled.set()
+                if self._stop.wait(self._retry_seconds):
+                    return None
+            except LedgerError as error:
+                self.fault = str(error)
+                log.critical("alert_sender_fault", reason=str(error))
+                self._settled.set()
+                return None
+
     def _run(self) -> None:
-        try:
-            database = Database(self.state_dir / LEDGER_NAME)
-        except LedgerError as error:
-            self.fault = str(error)
-            log.critical("alert_sender_fault", reason=str(error))
-            self._settled.set()
+        opened = self._open()
+        if opened is None:
             return
+        database = opened
         self._outbox = Outbox(database)
         self._control_log = ControlHistory(database)
+        # On a shared server a claimed delivery is left alone by the other senders for
+        # longer than an attempt can take (a sender that dies leaves it to them after).
+        self._lease = (self.settings.email.timeout_seconds + 60.0) if database.shared else 0.0
         try:
             while not self._stop.is_set():
                 with self._requests_lock:
@@ -164,6 +192,13 @@ class AlertSender:
                 self._wake.clear()
                 try:
                     wait = self._cycle()
+                except StoreUnavailable as error:
+                    # The server is away: the alerts wait in it; try again shortly.
+                    log.warning("alert_sender_store_away", reason=str(error))
+                    wait = self._retry_seconds
+                    if not self._stop.wait(wait):
+                        with suppress(LedgerError):  # still away: the next cycle says so
+                            database.reconnect()
                 except LedgerError as error:
                     # The worker will meet the same fault and stop the daemon; keep trying.
                     log.error("alert_sender_ledger_error", reason=str(error))
@@ -184,7 +219,7 @@ class AlertSender:
         assert self._outbox is not None
         self._daily_summary()
         self._dispatch()
-        for delivery in self._outbox.due(self._clock()):
+        for delivery in self._outbox.due(self._clock(), lease_seconds=self._lease):
             if self._stop.is_set():
                 return 0.0
             self._deliver(delivery)
@@ -336,7 +371,11 @@ class AlertSender:
         message = self.compose(alert)
         name = message_file_name(alert)
         write_message(self.outbox_dir / name, message)
-        self._outbox.release(alert.id, self._channels(), self._clock(), name)
+        if not self._outbox.release(alert.id, self._channels(), self._clock(), name):
+            # Another daemon on the same server released it first: its message stands.
+            (self.outbox_dir / name).unlink(missing_ok=True)
+            log.info("alert_released_elsewhere", alert=alert.id, kind=alert.kind)
+            return
         log.info(
             "alert_written",
             alert=alert.id,

@@ -164,6 +164,41 @@ def _parser() -> argparse.ArgumentParser:
         "(the earlier limits are kept, with their dates)",
     )
 
+    store = commands.add_parser(
+        "store",
+        help="bring the ledger's schema up to date, or copy a PC's ledger into the lab's",
+        description="Works on the ledger that --config's store section names (a lab's "
+        "PostgreSQL server), or on the state folder's SQLite file.",
+    )
+    store_commands = store.add_subparsers(dest="store_command", metavar="ACTION")
+    store_options = argparse.ArgumentParser(add_help=False)
+    store_options.add_argument("--config", type=Path, help="the daemon's configuration")
+    store_options.add_argument(
+        "--out", type=Path, help="the daemon's output folder (default: here)"
+    )
+    store_commands.add_parser(
+        "migrate",
+        parents=[store_options],
+        help="apply every schema version the ledger lacks (as the tables' owner)",
+    )
+    store_copy = store_commands.add_parser(
+        "copy",
+        parents=[store_options],
+        help="copy a SQLite ledger's history into this ledger, exactly once even if "
+        "interrupted and run again",
+    )
+    store_copy.add_argument(
+        "--from",
+        dest="source",
+        type=Path,
+        required=True,
+        metavar="SQLITE_LEDGER",
+        help="the PC's ledger file (<state>/ledger.sqlite3; its daemon stopped)",
+    )
+    store_copy.add_argument(
+        "--batch", type=int, default=500, help="rows per transaction (default 500)"
+    )
+
     demo = commands.add_parser(
         "demo", help="watch a demo folder while example runs land in it, then summarise"
     )
@@ -569,8 +604,10 @@ def _daemon_folders(args: argparse.Namespace) -> tuple[Path, Path, AppConfig] | 
         loaded = _load_config_or_say_why(args.config)
         if loaded is None:
             return None
-        config = loaded
         base = args.config.resolve().parent
+        from calwarden.daemon.settings.config import resolve_store_paths
+
+        config = loaded.model_copy(update={"store": resolve_store_paths(loaded.store, base)})
         if args.out is None and config.watch.out is not None:
             out = (base / config.watch.out).resolve()
             state_dir = out / ".calwarden"
@@ -585,14 +622,14 @@ def _status(args: argparse.Namespace) -> int:
     folders = _daemon_folders(args)
     if folders is None:
         return EXIT_ERROR
-    out, state_dir, _ = folders
+    out, state_dir, config = folders
     if args.json:
         import json
 
-        document = status_document(state_dir, out)
+        document = status_document(state_dir, out, config.store)
         print(json.dumps(document, indent=2, ensure_ascii=False))
         return EXIT_PASS if document["ledger"] else EXIT_ERROR
-    text, found = status_report(state_dir, out)
+    text, found = status_report(state_dir, out, config.store)
     print(text, end="")
     return EXIT_PASS if found else EXIT_ERROR
 
@@ -602,15 +639,20 @@ def _chart(args: argparse.Namespace) -> int:
 
     from calwarden.daemon.control_log.log import SeriesFilter, export_rows, recompute_baselines
     from calwarden.daemon.stores.control import ControlHistory, ControlLog
-    from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
+    from calwarden.daemon.stores.database import Database, LedgerError
+    from calwarden.daemon.stores.engine import store_target
     from calwarden.daemon.stores.records import timestamp
 
     folders = _daemon_folders(args)
     if folders is None:
         return EXIT_ERROR
     out, state_dir, config = folders
-    ledger_path = state_dir / LEDGER_NAME
-    if not ledger_path.exists():
+    try:
+        ledger_path = store_target(state_dir, config.store)
+    except LedgerError as error:
+        print(f"calwarden: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    if isinstance(ledger_path, Path) and not ledger_path.exists():
         print(
             f"calwarden: no ledger at {ledger_path}: nothing has been watched there yet",
             file=sys.stderr,
@@ -677,6 +719,67 @@ def _chart(args: argparse.Namespace) -> int:
     except (LedgerError, OSError) as error:
         print(f"calwarden: {error}", file=sys.stderr)
         return EXIT_ERROR
+
+
+def _store(args: argparse.Namespace) -> int:
+    from calwarden.daemon.intake.lock import is_locked
+    from calwarden.daemon.stores.copy import copy_ledger
+    from calwarden.daemon.stores.database import Database, LedgerError
+    from calwarden.daemon.stores.engine import store_target
+    from calwarden.daemon.stores.migrations import MIGRATIONS, SCHEMA_VERSION, current_version
+
+    if args.store_command not in ("migrate", "copy"):
+        print("calwarden: say `store migrate` or `store copy --from LEDGER`", file=sys.stderr)
+        return EXIT_ERROR
+    folders = _daemon_folders(args)
+    if folders is None:
+        return EXIT_ERROR
+    _, state_dir, config = folders
+    try:
+        target = store_target(state_dir, config.store)
+        if args.store_command == "migrate":
+            found = 0
+            if not isinstance(target, Path) or target.exists():
+                before = Database(target, migrate=False, read_only=True)
+                try:
+                    found = current_version(before.engine)
+                finally:
+                    before.close()
+            Database(target).close()
+            for step in MIGRATIONS:
+                if step.version > found:
+                    print(f"schema {step.version}: {step.summary}")
+            print(f"{target}: schema {SCHEMA_VERSION} (was {found or 'empty'})")
+            return EXIT_PASS
+        source_path = args.source.resolve()
+        if not source_path.is_file():
+            print(f"calwarden: no ledger file at {source_path}", file=sys.stderr)
+            return EXIT_ERROR
+        if is_locked(source_path.parent):
+            print(
+                f"calwarden: a daemon still runs on {source_path}; stop it first",
+                file=sys.stderr,
+            )
+            return EXIT_ERROR
+        if source_path == target:
+            print("calwarden: the source is this ledger itself", file=sys.stderr)
+            return EXIT_ERROR
+        source = Database(source_path)
+        try:
+            destination = Database(target)
+            try:
+                report = copy_ledger(source, destination, batch=max(1, args.batch))
+            finally:
+                destination.close()
+        finally:
+            source.close()
+    except LedgerError as error:
+        print(f"calwarden: {error}", file=sys.stderr)
+        return EXIT_ERROR
+    for table, copied in report.copied.items():
+        print(f"{table}: {copied} copied, {report.already.get(table, 0)} there already")
+    print(f"{source_path} (ledger {report.source}) is in {target}")
+    return EXIT_PASS
 
 
 def _alert(args: argparse.Namespace) -> int:
@@ -805,6 +908,8 @@ def _dispatch(argv: Sequence[str] | None) -> int:
         return _chart(args)
     if args.command == "alert":
         return _alert(args)
+    if args.command == "store":
+        return _store(args)
     _parser().print_help()
     return EXIT_ERROR
 

@@ -8,10 +8,13 @@ from calwarden.daemon.alerts.sender import DEAD_LETTER_FOLDER, OUTBOX_FOLDER
 from calwarden.daemon.intake.lock import is_locked, lock_owner
 from calwarden.daemon.outputs.overview import OVERVIEW_NAME
 from calwarden.daemon.outputs.printable import printable
+from calwarden.daemon.settings.store import StoreSettings
 from calwarden.daemon.stores.control import ControlHistory
-from calwarden.daemon.stores.database import LEDGER_NAME, Database, LedgerError
+from calwarden.daemon.stores.database import Database, LedgerError, ServerTarget
+from calwarden.daemon.stores.engine import store_target
 from calwarden.daemon.stores.files import FileStore
 from calwarden.daemon.stores.outbox import Outbox
+from calwarden.daemon.stores.owners import InboxOwners
 from calwarden.daemon.stores.records import Evaluation
 
 
@@ -48,9 +51,10 @@ def _entry(evaluation: Evaluation | None) -> dict[str, object] | None:
 STATUS_SCHEMA = 1
 
 
-def status_document(state_dir: Path, out: Path | None = None) -> dict[str, object]:
+def status_document(
+    state_dir: Path, out: Path | None = None, store: StoreSettings | None = None
+) -> dict[str, object]:
     """What ``status --json`` prints: stable keys, documented in the README."""
-    ledger_path = state_dir / LEDGER_NAME
     overview = None if out is None else out / OVERVIEW_NAME
     document: dict[str, object] = {
         "schema": STATUS_SCHEMA,
@@ -67,11 +71,16 @@ def status_document(state_dir: Path, out: Path | None = None) -> dict[str, objec
         "last_error": None,
         "alerts": None,
     }
-    if not ledger_path.exists():
-        document["problem"] = f"no ledger at {ledger_path}"
+    try:
+        target = store_target(state_dir, store or StoreSettings())
+    except LedgerError as error:
+        document["problem"] = f"cannot read the ledger: {error}"
+        return document
+    if isinstance(target, Path) and not target.exists():
+        document["problem"] = f"no ledger at {target}"
         return document
     try:
-        database = Database(ledger_path, read_only=True)
+        database = Database(target, read_only=True)
         try:
             files = FileStore(database)
             counts = files.counts()
@@ -107,9 +116,14 @@ def status_document(state_dir: Path, out: Path | None = None) -> dict[str, objec
     return document
 
 
-def status_report(state_dir: Path, out: Path | None = None) -> tuple[str, bool]:
-    """The status text, and whether there was a ledger to read."""
-    ledger_path = state_dir / LEDGER_NAME
+def status_report(
+    state_dir: Path, out: Path | None = None, store: StoreSettings | None = None
+) -> tuple[str, bool]:
+    """The status text, and whether there was a ledger to read.
+
+    On a lab's server the ledger is the whole lab's: the counts are every daemon's,
+    and each inbox is listed with the daemon that owns it.
+    """
     lines = [f"calwarden state folder: {state_dir}"]
     if out is not None:
         page = out / OVERVIEW_NAME
@@ -121,11 +135,18 @@ def status_report(state_dir: Path, out: Path | None = None) -> tuple[str, bool]:
         lines.append(f"daemon:       running{f' (process {owner})' if owner else ''}")
     else:
         lines.append("daemon:       not running")
-    if not ledger_path.exists():
-        lines.append(f"no ledger at {ledger_path}: no daemon has watched into this folder yet")
-        return "\n".join(lines) + "\n", False
     try:
-        database = Database(ledger_path, read_only=True)
+        target = store_target(state_dir, store or StoreSettings())
+    except LedgerError as error:
+        lines.append(f"cannot read the ledger: {error}")
+        return "\n".join(lines) + "\n", False
+    if isinstance(target, Path) and not target.exists():
+        lines.append(f"no ledger at {target}: no daemon has watched into this folder yet")
+        return "\n".join(lines) + "\n", False
+    if isinstance(target, ServerTarget):
+        lines.append(f"ledger:       {target} (the whole lab's)")
+    try:
+        database = Database(target, read_only=True)
         try:
             files = FileStore(database)
             counts = files.counts()
@@ -133,6 +154,7 @@ def status_report(state_dir: Path, out: Path | None = None) -> tuple[str, bool]:
             last_failure = files.latest(outcome="fail", limit=1)
             last_error = files.latest(outcome="error", limit=1)
             series, points, limited = ControlHistory(database).control_summary()
+            owners = InboxOwners(database).listing() if database.shared else []
             try:
                 alert_lines = _alerts(Outbox(database), state_dir)
             except LedgerError:  # a ledger from before the outbox, not yet opened by a daemon
@@ -142,6 +164,12 @@ def status_report(state_dir: Path, out: Path | None = None) -> tuple[str, bool]:
     except LedgerError as error:
         lines.append(f"cannot read the ledger: {error}")
         return "\n".join(lines) + "\n", False
+    for taken in owners:
+        state = "watching" if taken.watching else "not watched now; last"
+        lines.append(
+            f"inbox:        {taken.inbox}: {state} by {taken.host} (process {taken.pid}, "
+            f"since {taken.claimed_at})"
+        )
     judged = counts["pass"] + counts["fail"] + counts["error"]
     lines.append(
         f"files judged: {judged} (pass {counts['pass']}, fail {counts['fail']}, "

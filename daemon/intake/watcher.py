@@ -36,6 +36,7 @@ import itertools
 import json
 import os
 import queue
+import socket
 import stat
 import threading
 import time
@@ -85,10 +86,12 @@ from calwarden.daemon.outputs.verdict_json import calwarden_version
 from calwarden.daemon.outputs.verdict_model import VerdictDocument
 from calwarden.daemon.parsing.decode import MAX_FILE_BYTES
 from calwarden.daemon.settings.config import Inbox, WatchPlan
-from calwarden.daemon.stores.database import LEDGER_NAME, LedgerError
+from calwarden.daemon.stores.database import LedgerError, StoreUnavailable
+from calwarden.daemon.stores.engine import store_target
 from calwarden.daemon.stores.ledger import Ledger
 from calwarden.daemon.stores.outbox import Outbox
-from calwarden.daemon.stores.records import SeriesKey
+from calwarden.daemon.stores.owners import InboxOwners
+from calwarden.daemon.stores.records import SeriesKey, timestamp
 from calwarden.rules.criteria import Criteria
 
 log = structlog.get_logger("calwarden")
@@ -207,18 +210,37 @@ class Watcher:
                 f"cannot use the state folder {self.plan.state_dir}: {error}"
             ) from None
         try:
-            ledger = Ledger.open(self.plan.state_dir / LEDGER_NAME)
+            target = store_target(self.plan.state_dir, self.plan.store)
+            ledger = Ledger.open(target)
         except LedgerError as error:
             self._lock.release()
             # Exit 2, not 3: no restart repairs a ledger that does not open (README, exit codes).
-            raise StartError(
-                f"{error} (a damaged ledger: restore it from a backup, or move it aside "
-                "to start a new, empty one)"
-            ) from None
+            if isinstance(error, StoreUnavailable):
+                hint = " (the ledger's server cannot be reached; check store.url and that it runs)"
+            elif self.plan.store.url is not None:
+                hint = ""  # the server said why
+            else:
+                hint = (
+                    " (a damaged ledger: restore it from a backup, or move it aside "
+                    "to start a new, empty one)"
+                )
+            raise StartError(f"{error}{hint}") from None
+        try:
+            self._claim_inboxes(ledger)
+        except (LedgerError, StartError):
+            ledger.close()
+            self._lock.release()
+            raise
         self._ledger = ledger
         self._intake = Intake(ledger, self.plan.inboxes, self.plan.alerts)
         if self.plan.alerts.enabled:
-            self.sender = AlertSender(self.plan.state_dir, self.plan.alerts, self.plan.control)
+            self.sender = AlertSender(
+                self.plan.state_dir,
+                self.plan.alerts,
+                self.plan.control,
+                ledger=target,
+                retry_seconds=self.plan.store.retry_seconds,
+            )
             self.sender.criteria = self._chart_criteria  # its charts' acceptance windows
             self.sender.start()
         log.info(
@@ -234,6 +256,23 @@ class Watcher:
         self._thread = threading.Thread(target=self._run, name="calwarden-worker", daemon=True)
         self._thread.start()
         self.notifier.ready()
+
+    def _claim_inboxes(self, ledger: Ledger) -> None:
+        """Own every inbox on a shared ledger (one daemon per inbox at a time), or refuse."""
+        if not ledger.database.shared:
+            return  # a PC's file: the state folder's lock is enough
+        refused = InboxOwners(ledger.database).claim(
+            [inbox.name for inbox in self.plan.inboxes],
+            socket.gethostname(),
+            os.getpid(),
+            timestamp(),
+        )
+        if refused:
+            owners = ", ".join(
+                f"{owner.inbox} (by {owner.host}, process {owner.pid}, since {owner.claimed_at})"
+                for owner in refused.values()
+            )
+            raise StartError(f"another daemon watches the inbox(es) {owners} on this ledger")
 
     def stop(self, timeout: float = 10.0) -> None:
         """Finish (or safely abandon) the file in hand, close the ledger, stop every thread."""
@@ -282,31 +321,10 @@ class Watcher:
             next_check = now + self.settings.observer_check_seconds
             while not self._stop.is_set():
                 self.notifier.watchdog()  # the loop turns at least once a second (_MAX_WAIT)
-                now = time.monotonic()
-                wake = min(next_rescan, next_check, self._due[0].when if self._due else now + 60)
-                if not self._due and self._hints.empty():
-                    self._idle.set()
-                else:
-                    self._idle.clear()
-                # With a picture to draw and no file due soon, only look for hints; a file
-                # due soon is waited for as usual (no spinning until its turn).
-                drawing_next = self._pictures_to_draw() and self._quiet()
-                wait = 0.0 if drawing_next else min(wake - now, _MAX_WAIT)
-                self._take_hints(max(0.0, wait))
-                now = time.monotonic()
-                if now >= next_check:
-                    self._check_observers()
-                    next_check = now + self.settings.observer_check_seconds
-                if now >= next_rescan:
-                    self._scan_all("periodic")
-                    next_rescan = time.monotonic() + self.settings.rescan_seconds
-                self._settle_due()
-                if self._quiet():
-                    self._draw_one()
-                if time.monotonic() >= self._overview_next or (
-                    self._overview_stale and self._quiet()
-                ):
-                    self._refresh_overview()
+                try:
+                    next_rescan, next_check = self._turn(next_rescan, next_check)
+                except StoreUnavailable as error:
+                    self._await_store(error)
         except (LedgerError, OutputError) as error:
             self._fail(str(error))
         except Exception as error:  # a bug of ours: stop loudly rather than run half-broken
@@ -325,6 +343,74 @@ class Watcher:
             self._lock.release()
             log.info("daemon_stopped", fault=self.fault, files=self.outcomes)
             self._finished.set()
+
+    def _turn(self, next_rescan: float, next_check: float) -> tuple[float, float]:
+        """One turn of the worker: take hints, check, rescan, judge what is due, draw."""
+        now = time.monotonic()
+        wake = min(next_rescan, next_check, self._due[0].when if self._due else now + 60)
+        if not self._due and self._hints.empty():
+            self._idle.set()
+        else:
+            self._idle.clear()
+        # With a picture to draw and no file due soon, only look for hints; a file
+        # due soon is waited for as usual (no spinning until its turn).
+        drawing_next = self._pictures_to_draw() and self._quiet()
+        wait = 0.0 if drawing_next else min(wake - now, _MAX_WAIT)
+        self._take_hints(max(0.0, wait))
+        now = time.monotonic()
+        if now >= next_check:
+            self._check_observers()
+            next_check = now + self.settings.observer_check_seconds
+        if now >= next_rescan:
+            self._scan_all("periodic")
+            next_rescan = time.monotonic() + self.settings.rescan_seconds
+        self._settle_due()
+        if self._quiet():
+            self._draw_one()
+        if time.monotonic() >= self._overview_next or (self._overview_stale and self._quiet()):
+            self._refresh_overview()
+        return next_rescan, next_check
+
+    def _await_store(self, error: StoreUnavailable) -> None:
+        """The ledger's server is away: pause judging until it is back, then rescan.
+
+        Nothing is lost: the file in hand was not recorded (its record is one
+        transaction), so the rescan after reconnecting finds it and every file that
+        arrived meanwhile, and judges each once, writing the same outputs again for
+        the file in hand. The alert goes by the emergency path (the outbox is on the
+        server). A daemon that finds another owning its inboxes when the server is
+        back stops with a fault rather than judge beside it.
+        """
+        assert self._ledger is not None
+        log.error(
+            "store_unavailable", reason=str(error), retry_seconds=self.plan.store.retry_seconds
+        )
+        self._daemon_alert(
+            "store_unavailable",
+            "the ledger's server cannot be reached; files wait in the inboxes and are judged "
+            "when it is back",
+            reason=str(error),
+        )
+        started = time.monotonic()
+        while not self._stop.wait(self.plan.store.retry_seconds):
+            try:
+                self._ledger.database.reconnect()
+                self._claim_inboxes(self._ledger)
+                self._candidates.clear()
+                self._due.clear()
+                self._drawing = None
+                self._pictures_pending = True
+                self._scan_all("store_back")
+            except StoreUnavailable:
+                continue
+            except StartError as refused:
+                raise LedgerError(str(refused)) from None
+            away = round(time.monotonic() - started, 1)
+            log.info("store_back", away_seconds=away)
+            self._daemon_alert(
+                "store_back", f"the ledger's server is back after {away} s; judging goes on"
+            )
+            return
 
     def _fail(self, message: str) -> None:
         self.fault = message

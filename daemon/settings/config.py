@@ -36,6 +36,7 @@ from calwarden.daemon.settings.formats import (
     WideSection,
 )
 from calwarden.daemon.settings.presets import with_preset
+from calwarden.daemon.settings.store import StoreSettings
 from calwarden.daemon.settings.watch import InboxSettings, WatchSettings, merge_criteria
 from calwarden.daemon.settings.worklist import WorklistSettings
 from calwarden.rules.criteria import AnalyteCriteria, Criteria
@@ -72,6 +73,11 @@ class AppConfig(BaseModel):
         default_factory=AlertSettings,
         description="who hears about failed runs, unjudged files, control-chart rules and "
         "daemon trouble, and how (e-mail, .eml files, a webhook)",
+    )
+    store: StoreSettings = Field(
+        default_factory=StoreSettings,
+        description="where the ledger lives: the state folder's SQLite file, or a lab-wide "
+        "PostgreSQL server shared by every daemon",
     )
     inboxes: tuple[InboxSettings, ...] = Field(
         default=(),
@@ -151,6 +157,7 @@ def _known_keys() -> list[str]:
         WebhookSettings,
         DailySummarySettings,
         WorklistSettings,
+        StoreSettings,
     )
     return [name for model in models for name in model.model_fields]
 
@@ -261,6 +268,14 @@ class WatchPlan:
     inboxes: tuple[Inbox, ...]
     alerts: AlertSettings = field(default_factory=AlertSettings)
     control: ControlSettings = field(default_factory=ControlSettings)  # for charts in alerts
+    store: StoreSettings = field(default_factory=StoreSettings)  # where the ledger lives
+
+
+def resolve_store_paths(store: StoreSettings, base: Path) -> StoreSettings:
+    """The store settings with the password file made relative to the configuration's folder."""
+    if store.password_file is None:
+        return store
+    return store.model_copy(update={"password_file": base / store.password_file})
 
 
 def resolve_alert_paths(alerts: AlertSettings, base: Path) -> AlertSettings:
@@ -375,4 +390,5 @@ def plan_watch(
         tuple(resolved),
         alerts=resolve_alert_paths(config.alerts, base),
         control=config.control,
+        store=resolve_store_paths(config.store, base),
     )

@@ -246,7 +246,12 @@ class ControlLog(ControlHistory):
         )
 
     def add_limits(self, transaction: Transaction, limits: NewLimits) -> None:
-        """Make a set of limits its series' active one, inside ``transaction``."""
+        """Make a set of limits its series' active one, inside ``transaction``.
+
+        On a shared server two daemons may set a series' limits at once: the series'
+        lock makes the second wait and then retire the first's, so one set stays active.
+        """
+        transaction.serialise("calwarden:limits:" + "\x1f".join(_key_values(limits.key)))
         transaction.execute(
             "UPDATE control_limits SET active = 0 WHERE instrument = ? AND analyte = ? "
             "AND kind = ? AND level = ?",

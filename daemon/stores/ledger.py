@@ -1,7 +1,8 @@
 """The ledger as the daemon's worker writes it: one database and the stores on it.
 
-The ledger is one SQLite file (:mod:`.database`: connection, schema, upgrades, the
-one write path). Small stores share its connection, each with its own tables:
+The ledger is one database (:mod:`.database`: connection, schema version, the one
+write path; a SQLite file per PC or a lab's PostgreSQL server, :mod:`.engine`).
+Small stores share its connection, each with its own tables:
 
 * :class:`~.files.FileStore`: the files seen and their evaluations;
 * :class:`~.control.ControlLog`: the control-chart points and limits;
@@ -18,11 +19,10 @@ transaction, so a crash leaves all of it or none.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Self
 
 from calwarden.daemon.stores.control import ControlLog
-from calwarden.daemon.stores.database import Database
+from calwarden.daemon.stores.database import Database, Target
 from calwarden.daemon.stores.files import FileStore
 from calwarden.daemon.stores.outbox import AlertRecorder
 from calwarden.daemon.stores.pictures import PictureStore
@@ -40,9 +40,10 @@ class Ledger:
     alerts: AlertRecorder
 
     @classmethod
-    def open(cls, path: Path, *, read_only: bool = False) -> Self:
-        """Open (creating or upgrading unless ``read_only``) the ledger file at ``path``."""
-        database = Database(path, read_only=read_only)
+    def open(cls, target: Target, *, read_only: bool = False) -> Self:
+        """Open (creating or upgrading unless ``read_only``) the ledger at ``target``: a
+        SQLite file, or a lab's server."""
+        database = Database(target, read_only=read_only)
         return cls(
             database,
             FileStore(database),

@@ -149,26 +149,34 @@ class Outbox:
 
     def release(
         self, alert_id: int, channels: tuple[str, ...], now: float, message_file: str
-    ) -> None:
-        """Mark an alert released with its .eml file, and make its deliveries."""
+    ) -> bool:
+        """Mark a new alert released with its .eml file, and make its deliveries.
+
+        False when it is not new any more: on a shared server another daemon released
+        it first (the row lock makes the second wait, then find it released).
+        """
         with self._db.write() as transaction:
-            transaction.execute(
+            changed = transaction.execute(
                 "UPDATE alerts SET state = 'released', released_at = ?, message_file = ? "
-                "WHERE id = ?",
+                "WHERE id = ? AND state = 'new'",
                 (now, message_file, alert_id),
             )
+            if not changed:
+                return False
             for channel in channels:
                 transaction.execute(
                     "INSERT INTO deliveries (alert_id, channel, next_attempt) "
                     "VALUES (?, ?, ?) ON CONFLICT DO NOTHING",
                     (alert_id, channel, now),
                 )
+        return True
 
     def gather(self, alert_ids: list[int]) -> None:
         """Hold alerts back for the next digest (one transaction for a whole burst)."""
         with self._db.write() as transaction:
             transaction.execute_many(
-                "UPDATE alerts SET state = 'gathered' WHERE id = ?", [(i,) for i in alert_ids]
+                "UPDATE alerts SET state = 'gathered' WHERE id = ? AND state = 'new'",
+                [(i,) for i in alert_ids],
             )
 
     def make_digest(self, digest: NewAlert, gathered: list[int], now: float) -> int:
@@ -195,13 +203,50 @@ class Outbox:
     def has_alert(self, dedupe_key: str) -> bool:
         return self._db.one("SELECT 1 FROM alerts WHERE dedupe_key = ?", (dedupe_key,)) is not None
 
-    def due(self, now: float, *, limit: int = 20) -> list[Delivery]:
-        rows = self._db.rows(
-            f"SELECT {_ALERT_COLUMNS}, d.channel, d.attempts, d.first_attempt FROM deliveries d "
-            "JOIN alerts a ON a.id = d.alert_id WHERE d.state = 'waiting' AND d.next_attempt <= ? "
-            "ORDER BY d.next_attempt, a.id LIMIT ?",
-            (now, limit),
-        )
+    def due(self, now: float, *, limit: int = 20, lease_seconds: float = 0.0) -> list[Delivery]:
+        """The deliveries whose attempt is due, claimed for this sender.
+
+        On a shared server several senders look at once: each claims rows with
+        ``FOR UPDATE SKIP LOCKED`` and moves their next attempt ``lease_seconds``
+        on, so that no other sender tries them meanwhile; the attempt's outcome
+        (sent, dead, postponed) then sets it for good. A sender that dies holding a
+        claim leaves the delivery to another once the lease has run out.
+        """
+        if not self._db.shared:  # one sender on a PC's file: nothing to claim from
+            rows = self._db.rows(
+                f"SELECT {_ALERT_COLUMNS}, d.channel, d.attempts, d.first_attempt "
+                "FROM deliveries d JOIN alerts a ON a.id = d.alert_id WHERE d.state = 'waiting' "
+                "AND d.next_attempt <= ? ORDER BY d.next_attempt, a.id LIMIT ?",
+                (now, limit),
+            )
+            return [Delivery(_alert(row[:9]), str(row[9]), int(row[10]), row[11]) for row in rows]
+        with self._db.write() as transaction:
+            claimed = transaction.rows(
+                "SELECT alert_id, channel FROM deliveries WHERE state = 'waiting' "
+                "AND next_attempt <= ? ORDER BY next_attempt, alert_id LIMIT ?"
+                + transaction.lock_for_update,
+                (now, limit),
+            )
+            if not claimed:
+                return []
+            if lease_seconds > 0:
+                transaction.execute_many(
+                    "UPDATE deliveries SET next_attempt = ? WHERE alert_id = ? AND channel = ?",
+                    [(now + lease_seconds, alert_id, channel) for alert_id, channel in claimed],
+                )
+            rows = [
+                row
+                for alert_id, channel in claimed
+                if (
+                    row := transaction.one(
+                        f"SELECT {_ALERT_COLUMNS}, d.channel, d.attempts, d.first_attempt "
+                        "FROM deliveries d JOIN alerts a ON a.id = d.alert_id "
+                        "WHERE d.alert_id = ? AND d.channel = ?",
+                        (alert_id, channel),
+                    )
+                )
+                is not None
+            ]
         return [Delivery(_alert(row[:9]), str(row[9]), int(row[10]), row[11]) for row in rows]
 
     def next_attempt(self) -> float | None:
