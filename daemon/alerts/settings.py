@@ -16,7 +16,7 @@ from typing import Literal
 
 from pydantic import Field, field_validator, model_validator
 
-from calwarden.daemon.settings.section import Section
+from calwarden.daemon.settings.section import PasswordByReference, Section
 
 #: What can raise an alert.
 #: fail: a run failed its criteria; error: a file could not be judged;
@@ -37,7 +37,7 @@ def _addresses(values: tuple[str, ...]) -> tuple[str, ...]:
     return values
 
 
-class EmailSettings(Section):
+class EmailSettings(PasswordByReference):
     """The SMTP server alerts are sent through; no host: ``.eml`` files only."""
 
     host: str | None = Field(
@@ -84,16 +84,6 @@ class EmailSettings(Section):
     )
 
     _check_to = field_validator("to")(_addresses)
-
-    @model_validator(mode="before")
-    @classmethod
-    def _no_password_here(cls, data: object) -> object:
-        if isinstance(data, dict) and "password" in data:
-            raise ValueError(
-                "the password never goes in the configuration: name an environment variable "
-                "(password_env) or a file readable only by the service (password_file)"
-            )
-        return data
 
     @field_validator("sender")
     @classmethod

@@ -15,10 +15,10 @@ from urllib.parse import urlsplit
 
 from pydantic import Field, field_validator, model_validator
 
-from calwarden.daemon.settings.section import Section
+from calwarden.daemon.settings.section import PasswordByReference
 
 
-class StoreSettings(Section):
+class StoreSettings(PasswordByReference):
     """Where the ledger lives; no url: a SQLite file in the state folder."""
 
     url: str | None = Field(
@@ -38,16 +38,6 @@ class StoreSettings(Section):
         le=300,
         description="while the server is away, how often the daemon tries it again",
     )
-
-    @model_validator(mode="before")
-    @classmethod
-    def _no_password_here(cls, data: object) -> object:
-        if isinstance(data, dict) and "password" in data:
-            raise ValueError(
-                "the password never goes in the configuration: name an environment variable "
-                "(password_env) or a file readable only by the service (password_file)"
-            )
-        return data
 
     @field_validator("url")
     @classmethod

@@ -261,3 +261,15 @@ def superseded_checks(context: AnalyteContext) -> dict[int, tuple[Reading, ...]]
         ):
             found[check.seq] = reruns
     return found
+
+
+def not_judged(rule_id: str, context: AnalyteContext, reading: Reading, why: str) -> Finding:
+    """An info finding: this reading could not be judged by the rule, and why."""
+    return reading_finding(
+        rule_id,
+        Severity.INFO,
+        context,
+        reading,
+        f"{reading.sample_id} {context.analyte} not judged: {why}",
+        flag=Flag.NOT_JUDGED,
+    )

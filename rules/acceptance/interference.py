@@ -12,6 +12,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from calwarden.rules.acceptance.common import (
+    not_judged,
     number,
     reading_finding,
     recovery_finding,
@@ -39,17 +40,6 @@ def _native(context: AnalyteContext, reading: Reading) -> tuple[Reading, Result]
     chosen = earlier[-1] if earlier else candidates[0]
     result = result_of(context, chosen)
     return (chosen, result) if result else None
-
-
-def _not_judged(rule_id: str, context: AnalyteContext, reading: Reading, why: str) -> Finding:
-    return reading_finding(
-        rule_id,
-        Severity.INFO,
-        context,
-        reading,
-        f"{reading.sample_id} {context.analyte} not judged: {why}",
-        flag=Flag.NOT_JUDGED,
-    )
 
 
 @rule("ics.recovery", "Interference check solutions recover their interferents and analytes")
@@ -139,7 +129,7 @@ def serial_dilution_difference(context: AnalyteContext) -> Iterator[Finding]:
         diluted = result_of(context, reading)
         native = _native(context, reading)
         if native is None:
-            yield _not_judged(
+            yield not_judged(
                 "serial_dilution.difference",
                 context,
                 reading,
@@ -153,13 +143,13 @@ def serial_dilution_difference(context: AnalyteContext) -> Iterator[Finding]:
             or undiluted.concentration is None
             or undiluted.measured is None
         ):
-            yield _not_judged(
+            yield not_judged(
                 "serial_dilution.difference", context, reading, "a result cannot be quantitated"
             )
             continue
         threshold = criteria.serial_dilution_min_multiple * lod if lod else None
         if threshold is None or undiluted.measured < threshold or undiluted.concentration <= 0:
-            yield _not_judged(
+            yield not_judged(
                 "serial_dilution.difference",
                 context,
                 reading,
@@ -215,13 +205,13 @@ def pds_recovery(context: AnalyteContext) -> Iterator[Finding]:
         native = _native(context, reading)
         added = reading.added or 0.0
         if native is None:
-            yield _not_judged(
+            yield not_judged(
                 "pds.recovery", context, reading, f"parent '{reading.parent}' not in this run"
             )
             continue
         parent, undiluted = native
         if spiked is None or spiked.concentration is None or undiluted.concentration is None:
-            yield _not_judged("pds.recovery", context, reading, "a result cannot be quantitated")
+            yield not_judged("pds.recovery", context, reading, "a result cannot be quantitated")
             continue
         recovery = recovery_pct(spiked.concentration - undiluted.concentration, added)
         detail = f" of {number(added)}{context.unit} added to {parent.sample_id}"

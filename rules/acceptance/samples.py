@@ -7,6 +7,7 @@ from bisect import bisect_left
 from collections.abc import Callable, Iterable, Iterator
 
 from calwarden.rules.acceptance.common import (
+    not_judged,
     number,
     off_curve_results,
     quantitated_field_results,
@@ -348,17 +349,6 @@ def _native(
     return (chosen, result) if result else None
 
 
-def _not_judged(rule_id: str, context: AnalyteContext, reading: Reading, why: str) -> Finding:
-    return reading_finding(
-        rule_id,
-        Severity.INFO,
-        context,
-        reading,
-        f"{reading.sample_id} {context.analyte} not judged: {why}",
-        flag=Flag.NOT_JUDGED,
-    )
-
-
 @rule("duplicate.rpd", "Laboratory duplicates agree with their parent samples")
 def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
     """Relative percent difference between a duplicate and its parent sample.
@@ -395,10 +385,10 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
             continue
         parent = native[1]
         if duplicate is None or duplicate.measured is None or parent.measured is None:
-            yield _not_judged("duplicate.rpd", context, reading, "a result cannot be quantitated")
+            yield not_judged("duplicate.rpd", context, reading, "a result cannot be quantitated")
             continue
         if duplicate.concentration is None or parent.concentration is None:
-            yield _not_judged("duplicate.rpd", context, reading, "a result cannot be computed")
+            yield not_judged("duplicate.rpd", context, reading, "a result cannot be computed")
             continue
         smaller = min(duplicate.concentration, parent.concentration)
         limit = reporting_limit(context, native[0])
@@ -408,7 +398,7 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
         elif low is None or min(duplicate.measured, parent.measured) < (
             criteria.duplicate_min_multiple * low
         ):
-            yield _not_judged(
+            yield not_judged(
                 "duplicate.rpd",
                 context,
                 reading,
@@ -451,16 +441,16 @@ def spike_recovery(context: AnalyteContext) -> Iterator[Finding]:
         native = _native(context, reading, parents)
         added = reading.added or 0.0
         if native is None:
-            yield _not_judged(
+            yield not_judged(
                 "spike.recovery", context, reading, f"parent '{reading.parent}' not in this run"
             )
             continue
         parent = native[1]
         if spiked is None or spiked.concentration is None or parent.concentration is None:
-            yield _not_judged("spike.recovery", context, reading, "a result cannot be quantitated")
+            yield not_judged("spike.recovery", context, reading, "a result cannot be quantitated")
             continue
         if parent.concentration > criteria.spike_max_native_ratio * added:
-            yield _not_judged(
+            yield not_judged(
                 "spike.recovery",
                 context,
                 reading,
