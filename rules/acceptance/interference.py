@@ -21,25 +21,13 @@ from calwarden.rules.acceptance.common import (
     span,
     within,
 )
-from calwarden.rules.model import Kind, Reading
+from calwarden.rules.acceptance.samples import parent_result, parents_by_id
+from calwarden.rules.model import Kind
 from calwarden.rules.rule import AnalyteContext, rule
-from calwarden.rules.verdict import Finding, Flag, Result, Severity
+from calwarden.rules.verdict import Finding, Flag, Severity
 
 #: Kinds a serial dilution or a post-digestion spike is made from (native samples).
 _NATIVE_KINDS = frozenset({Kind.SAMPLE})
-
-
-def _native(context: AnalyteContext, reading: Reading) -> tuple[Reading, Result] | None:
-    """The parent sample's reading and result: the nearest acquired before, else the first."""
-    candidates = [
-        r for r in context.readings if r.kind in _NATIVE_KINDS and r.sample_id == reading.parent
-    ]
-    if not candidates:
-        return None
-    earlier = [r for r in candidates if r.seq < reading.seq]
-    chosen = earlier[-1] if earlier else candidates[0]
-    result = result_of(context, chosen)
-    return (chosen, result) if result else None
 
 
 @rule("ics.recovery", "Interference check solutions recover their interferents and analytes")
@@ -125,9 +113,10 @@ def serial_dilution_difference(context: AnalyteContext) -> Iterator[Finding]:
     calibration = context.calibration
     lod = calibration.lod if calibration else None
     limit = criteria.serial_dilution_max_difference_pct
+    parents = parents_by_id(context, _NATIVE_KINDS)
     for reading in context.of_kind(Kind.SERIAL_DILUTION):
         diluted = result_of(context, reading)
-        native = _native(context, reading)
+        native = parent_result(context, reading, parents)
         if native is None:
             yield not_judged(
                 "serial_dilution.difference",
@@ -200,9 +189,10 @@ def pds_recovery(context: AnalyteContext) -> Iterator[Finding]:
     """
     criteria = context.criteria
     limits = criteria.pds_recovery_pct
+    parents = parents_by_id(context, _NATIVE_KINDS)
     for reading in context.of_kind(Kind.PDS):
         spiked = result_of(context, reading)
-        native = _native(context, reading)
+        native = parent_result(context, reading, parents)
         added = reading.added or 0.0
         if native is None:
             yield not_judged(
@@ -238,11 +228,12 @@ def _missing_pds(context: AnalyteContext) -> Iterator[Finding]:
     """A failing matrix spike whose parent has no post-digestion spike in the run."""
     limits = context.criteria.spike_recovery_pct
     spiked_after = {r.parent for r in context.of_kind(Kind.PDS)}
+    parents = parents_by_id(context, _NATIVE_KINDS)
     for spike in context.of_kind(Kind.MS):
         if spike.parent in spiked_after:
             continue
         result = result_of(context, spike)
-        native = _native(context, spike)
+        native = parent_result(context, spike, parents)
         if result is None or native is None or result.concentration is None:
             continue  # spike.recovery says why it is not judged
         undiluted = native[1].concentration

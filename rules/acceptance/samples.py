@@ -329,18 +329,20 @@ def _grouped(
     return groups
 
 
-def _parents(context: AnalyteContext) -> dict[str | None, _Candidates]:
-    """The analyte's samples, LCS and method blanks by sample id."""
-    return _grouped((r for r in context.readings if r.kind in _PARENT_KINDS), lambda r: r.sample_id)
+def parents_by_id(
+    context: AnalyteContext, kinds: frozenset[Kind] = _PARENT_KINDS
+) -> dict[str | None, _Candidates]:
+    """The analyte's readings that can be a parent (by default samples, LCS and method
+    blanks) by sample id: built once per rule, looked up for each child."""
+    return _grouped((r for r in context.readings if r.kind in kinds), lambda r: r.sample_id)
 
 
-def _native(
+def parent_result(
     context: AnalyteContext, reading: Reading, parents: dict[str | None, _Candidates]
 ) -> tuple[Reading, Result] | None:
-    """The parent's reading and result (the nearest one acquired before, else the first).
-
-    A parent may be a sample, an LCS or a method blank (an LCS duplicate is routine).
-    """
+    """The parent's reading and result (the nearest one acquired before, else the first),
+    from ``parents_by_id``: a duplicate's parent may be a sample, an LCS or a method blank
+    (an LCS duplicate is routine)."""
     candidates = parents.get(reading.parent)
     if candidates is None:
         return None
@@ -368,10 +370,10 @@ def duplicate_rpd(context: AnalyteContext) -> Iterator[Finding]:
     criteria = context.criteria
     calibration = context.calibration
     low = calibration.range_low if calibration else None
-    parents = _parents(context)
+    parents = parents_by_id(context)
     for reading in context.of_kind(Kind.DUP):
         duplicate = result_of(context, reading)
-        native = _native(context, reading, parents)
+        native = parent_result(context, reading, parents)
         if native is None:
             yield reading_finding(
                 "duplicate.rpd",
@@ -435,10 +437,10 @@ def spike_recovery(context: AnalyteContext) -> Iterator[Finding]:
     """
     criteria = context.criteria
     limits = criteria.spike_recovery_pct
-    parents = _parents(context)
+    parents = parents_by_id(context)
     for reading in context.of_kind(Kind.MS, Kind.MSD):
         spiked = result_of(context, reading)
-        native = _native(context, reading, parents)
+        native = parent_result(context, reading, parents)
         added = reading.added or 0.0
         if native is None:
             yield not_judged(
